@@ -1,0 +1,17 @@
+"""Built-in adapters, one module per implementation family.
+
+``BUILTINS`` maps a name (what ``--adapter NAME`` accepts) to ``module:factory``.
+Modules are imported only when their adapter is loaded, so a missing library makes
+that adapter ``unavailable`` instead of breaking ``import convwitness``.
+"""
+from __future__ import annotations
+
+BUILTINS: dict[str, str] = {
+    "reference": "convwitness.adapters.reference:ReferenceAdapter",
+    "torch": "convwitness.adapters.torch_nn:TorchAdapter",
+    "jax": "convwitness.adapters.jax_lax:JaxAdapter",
+    "onnxruntime": "convwitness.adapters.onnxruntime_node:OnnxRuntimeAdapter",
+    "scipy": "convwitness.adapters.scipy_signal:ScipyAdapter",
+}
+
+__all__ = ["BUILTINS"]

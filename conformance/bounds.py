@@ -1,0 +1,263 @@
+"""Derived rounding-error bounds.
+
+A correct implementation that sums ``n`` products in any order, rounding each
+operation to nearest with unit roundoff ``u``, obeys componentwise
+
+    |y_hat - y| <= gamma_n * (|x| * |w|),      gamma_n = n u / (1 - n u)
+
+(Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., SIAM 2002,
+Lemma 3.1 and §3.1, eq. 3.4/3.5), where ``|x| * |w|`` is the same convolution
+applied to absolute values. convwitness composes this from the adapter's declared
+:class:`ErrorModel`:
+
+* operands read in a narrower format (a tf32-like mode) contribute ``(1 + u_in)^2``
+  per product;
+* products formed in format P contribute ``(1 + u_p)``, and none when the product
+  of two operands is exact in P (``2 p_operand <= p_P``: bfloat16 x bfloat16 in
+  float32, for example);
+* ``n - 1`` additions (``n`` with a bias) in the accumulation format contribute
+  ``(1 + gamma_{n-1}(u_acc))``; with one precision throughout this is ``gamma_n``;
+* the final rounding to the output format adds ``u_out |y|`` and scales the rest by
+  ``(1 + u_out)``;
+* the float64 reference is itself rounded: ``gamma_n(2**-53)`` of the magnitude is
+  added so that float64 implementations are judged fairly;
+* gradual underflow: each rounded product may lose half the smallest subnormal of
+  its format, and so may the final rounding.
+
+Bias gradients are pure sums (no products): ``gamma_{n-1}(u_acc) * sum |g|``.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import FormatError
+from .formats import FORMATS, get_format
+
+__all__ = ["gamma", "ErrorModel", "Bound", "derive", "ALGORITHMS", "U64"]
+
+U64 = 2.0 ** -53
+ALGORITHMS = ("direct", "winograd", "fft")
+
+
+def gamma(n: int, u: float) -> float:
+    """``gamma_n = n u / (1 - n u)``; ``inf`` when ``n u >= 1`` (the bound is vacuous)."""
+    if n < 0:
+        raise ValueError(f"gamma: n={n} must be >= 0")
+    nu = n * u
+    if nu >= 1:
+        return math.inf
+    return nu / (1 - nu)
+
+
+def _fmt_u(u: float) -> str:
+    if u == 0:
+        return "0"
+    e = math.log2(u)
+    return f"2^{int(e)}" if e == int(e) else f"{u:.3g}"
+
+
+@dataclass(frozen=True)
+class ErrorModel:
+    """How an implementation rounds, as its adapter declares it.
+
+    Formats are names from :mod:`convwitness.formats`; ``None`` means "the dtype of
+    the case". ``algorithm`` names the summation family: ``direct`` covers direct
+    loops, im2col/GEMM and any summation order; ``winograd`` and ``fft`` are fast
+    algorithms whose errors the componentwise bound does not cover.
+    """
+
+    accumulate: str | None = None
+    product: str | None = None
+    operand: str | None = None
+    output: str | None = None
+    algorithm: str = "direct"
+    block: int | None = None
+    note: str = ""
+
+    def __post_init__(self):
+        for name in ("accumulate", "product", "operand", "output"):
+            v = getattr(self, name)
+            if v is not None and v not in FORMATS:
+                raise FormatError(f"ErrorModel: {name}={v!r} is not a known format; expected one "
+                                  f"of {', '.join(FORMATS)} or None (the case's dtype)")
+        if self.algorithm not in ALGORITHMS:
+            raise FormatError(f"ErrorModel: algorithm={self.algorithm!r}; expected one of "
+                              f"{', '.join(ALGORITHMS)}")
+        if self.block is not None and (not isinstance(self.block, int) or self.block < 1):
+            raise FormatError(f"ErrorModel: block={self.block!r} must be a positive int or None")
+
+    def resolve(self, dtype: str) -> "ResolvedModel":
+        acc = self.accumulate or dtype
+        return ResolvedModel(
+            dtype=dtype,
+            operand=self.operand or dtype,
+            product=self.product or acc,
+            accumulate=acc,
+            output=self.output or dtype,
+            algorithm=self.algorithm,
+            block=self.block,
+        )
+
+    def to_dict(self) -> dict:
+        return {"accumulate": self.accumulate, "product": self.product, "operand": self.operand,
+                "output": self.output, "algorithm": self.algorithm, "block": self.block,
+                "note": self.note}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "ErrorModel":
+        return cls(**{k: d.get(k) for k in ("accumulate", "product", "operand", "output", "block")},
+                   algorithm=d.get("algorithm", "direct"), note=d.get("note", "") or "")
+
+    def describe(self, dtype: str | None = None) -> str:
+        if dtype is not None:
+            r = self.resolve(dtype)
+            s = (f"{r.algorithm}: operands {r.operand}, products {r.product}, "
+                 f"accumulate {r.accumulate}, output {r.output}")
+        else:
+            s = (f"{self.algorithm}: operands {self.operand or 'dtype'}, products "
+                 f"{self.product or self.accumulate or 'dtype'}, accumulate "
+                 f"{self.accumulate or 'dtype'}, output {self.output or 'dtype'}")
+        if self.block:
+            s += f", blocks of {self.block}"
+        return s
+
+
+@dataclass(frozen=True)
+class ResolvedModel:
+    dtype: str
+    operand: str
+    product: str
+    accumulate: str
+    output: str
+    algorithm: str
+    block: int | None
+
+    @property
+    def operand_precision(self) -> int:
+        return min(get_format(self.operand).precision, get_format(self.dtype).precision)
+
+    @property
+    def u_in(self) -> float:
+        """Rounding of operands read in a narrower format than they are stored in."""
+        op, dt = get_format(self.operand), get_format(self.dtype)
+        return op.u if op.precision < dt.precision else 0.0
+
+    @property
+    def u_p(self) -> float:
+        """Rounding of one product; 0 when two operands multiply exactly."""
+        p = get_format(self.product)
+        return 0.0 if 2 * self.operand_precision <= p.precision else p.u
+
+    @property
+    def u_acc(self) -> float:
+        return get_format(self.accumulate).u
+
+    @property
+    def u_out(self) -> float:
+        return get_format(self.output).u
+
+    def exact_limit(self) -> float:
+        """Integer data whose magnitude sums stay at or below this are summed exactly."""
+        if self.algorithm != "direct":
+            return 0.0
+        p = min(get_format(self.product).precision if self.u_p else 10 ** 6,
+                get_format(self.accumulate).precision, get_format(self.output).precision,
+                self.operand_precision)
+        return float(2 ** p)
+
+
+@dataclass(frozen=True)
+class Bound:
+    """A per-element bound on ``|actual - reference|`` and how it was built."""
+
+    pass_: str
+    n: int
+    coefficient: float          # c in  c*|mag| + u_out*|y| + absolute
+    u_out: float
+    absolute: float
+    values: np.ndarray = field(repr=False, compare=False)
+    explanation: str = ""
+    exact_limit: float = 0.0
+    vacuous: bool = False
+
+    def explain(self) -> str:
+        """One line: how the bound was built."""
+        return self.explanation
+
+
+def _inner_coefficient(m: ResolvedModel, n_add: int, products: bool) -> tuple[float, str]:
+    """Relative error coefficient e of one accumulated element, and its description."""
+    if m.algorithm != "direct":
+        from . import fastbounds                 # models of fast algorithms
+        return fastbounds.coefficient(m, n_add, products)
+    u_acc = m.u_acc
+    if m.block:
+        # Blocked accumulation: each block of `block` terms summed (block-1 additions),
+        # then the n_blocks partial sums summed (n_blocks-1 additions).
+        nb = -(-(n_add + 1) // m.block)
+        adds = (min(m.block, n_add + 1) - 1) + (nb - 1)
+        acc_desc = f"blocks of {m.block}: {adds} additions"
+    else:
+        adds = n_add
+        acc_desc = None
+    u_in2 = (1 + m.u_in) ** 2 - 1 if products else m.u_in
+    u_p = m.u_p if products else 0.0
+    if products and u_in2 == 0 and u_p == u_acc and not m.block:
+        n = adds + 1
+        return gamma(n, u_acc), f"γ_{n} at u={_fmt_u(u_acc)}"
+    if not products and m.u_in == 0 and not m.block:
+        return gamma(adds, u_acc), f"γ_{adds} at u={_fmt_u(u_acc)} (sums only)"
+    e = (1 + u_in2) * (1 + u_p) * (1 + gamma(adds, u_acc)) - 1
+    parts = []
+    if u_in2:
+        parts.append(f"operands read as {m.operand} (u={_fmt_u(m.u_in)})")
+    if products:
+        parts.append("exact products" if u_p == 0 else f"products rounded at u={_fmt_u(u_p)}")
+    parts.append(f"γ_{adds} at u={_fmt_u(u_acc)}" + (f" ({acc_desc})" if acc_desc else ""))
+    return e, ", ".join(parts)
+
+
+def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
+           with_bias: bool = False) -> Bound:
+    """Bound on ``|actual - reference|`` for every element of one pass.
+
+    ``magnitude`` is the pass applied to absolute values (``reference.*_magnitude``),
+    ``reference`` the float64 result, ``with_bias`` whether a bias joins the sum
+    (forward pass only).
+    """
+    m = model.resolve(spec.dtype)
+    n = spec.accumulation_length("forward" if pass_ == "transposed" else pass_)
+    products = pass_ != "grad_bias"
+    terms = n + (1 if with_bias else 0)
+    n_add = max(terms - 1, 0)
+    e, desc = _inner_coefficient(m, n_add, products)
+    ref_e = gamma(terms, U64)
+    u_out = m.u_out
+    coeff = (1 + u_out) * (e + 2 * ref_e) * (1 + ref_e)
+    out_fmt = get_format(m.output)
+    absolute = out_fmt.smallest_subnormal / 2
+    if products and m.u_p:
+        absolute += n * get_format(m.product).smallest_subnormal / 2 * (1 + u_out)
+    mag = np.asarray(magnitude, dtype=np.float64)
+    ref = np.asarray(reference, dtype=np.float64)
+    vacuous = not math.isfinite(e)
+    with np.errstate(invalid="ignore", over="ignore"):
+        values = coeff * mag + u_out * np.abs(ref) + absolute
+        if vacuous:
+            values = np.where(mag == 0, u_out * np.abs(ref) + absolute, np.inf)
+    explanation = (f"{desc} on {_mag_name(pass_)}, plus output rounding u={_fmt_u(u_out)} "
+                   f"({m.output}) and the float64 reference's γ_{terms}")
+    if vacuous:
+        explanation = (f"vacuous: {desc} has n·u >= 1, so the worst-case bound says nothing; "
+                       "declare a blocked-accumulation model (ErrorModel.block) to get a usable one")
+    return Bound(pass_=pass_, n=n, coefficient=coeff, u_out=u_out, absolute=absolute,
+                 values=values, explanation=explanation, exact_limit=m.exact_limit(),
+                 vacuous=vacuous)
+
+
+def _mag_name(pass_: str) -> str:
+    return {"forward": "|x|⋆|w|", "transposed": "|x|⋆ᵀ|w|", "grad_input": "|g|⋆ᵀ|w|",
+            "grad_weight": "|x|⋆|g|", "grad_bias": "Σ|g|"}.get(pass_, "the magnitudes")
