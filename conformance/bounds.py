@@ -179,6 +179,7 @@ class Bound:
     u_out: float
     absolute: float
     values: np.ndarray = field(repr=False, compare=False)
+    magnitude: np.ndarray | None = field(default=None, repr=False, compare=False)
     explanation: str = ""
     exact_limit: float = 0.0
     vacuous: bool = False
@@ -254,7 +255,7 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
         explanation = (f"vacuous: {desc} has n·u >= 1, so the worst-case bound says nothing; "
                        "declare a blocked-accumulation model (ErrorModel.block) to get a usable one")
     return Bound(pass_=pass_, n=n, coefficient=coeff, u_out=u_out, absolute=absolute,
-                 values=values, explanation=explanation, exact_limit=m.exact_limit(),
+                 values=values, magnitude=mag, explanation=explanation, exact_limit=m.exact_limit(),
                  vacuous=vacuous)
 
 

@@ -21,7 +21,8 @@ from __future__ import annotations
 import numpy as np
 
 from .capabilities import Capabilities
-from .errors import AdapterLoadError, AdapterOutputError
+from .errors import (AdapterCrashed, AdapterLoadError, AdapterOutputError, AdapterRaised,
+                     AdapterTimeout)
 from .formats import numpy_dtype
 from .spec import ConvSpec
 
@@ -114,7 +115,7 @@ class Adapter:
     # -- calls ---------------------------------------------------------------------
     def forward(self, spec: ConvSpec, x, w, b=None) -> np.ndarray:
         """y = adapter(x, w, b) for a non-transposed spec, checked against the contract."""
-        y = self._forward(x, w, b, **call_kwargs(spec))
+        y = self._call("forward", self._forward, x, w, b, **call_kwargs(spec))
         return check_array(self.name, "forward", "y", y, spec.y_shape, spec.dtype)
 
     def backward(self, spec: ConvSpec, x, w, b, grad_y):
@@ -122,7 +123,7 @@ class Adapter:
         if self._backward is None:
             raise AdapterOutputError(f"adapter {self.name} offers no backward(); it cannot be "
                                      "asked for gradients")
-        out = self._backward(x, w, b, grad_y, **call_kwargs(spec))
+        out = self._call("backward", self._backward, x, w, b, grad_y, **call_kwargs(spec))
         if not isinstance(out, (tuple, list)) or len(out) != 3:
             raise AdapterOutputError(
                 f"adapter {self.name} backward: expected a tuple (grad_x, grad_w, grad_b), got "
@@ -141,8 +142,20 @@ class Adapter:
         if self._transposed is None:
             raise AdapterOutputError(f"adapter {self.name} offers no transposed(); it cannot be "
                                      "asked for a transposed convolution")
-        y = self._transposed(x, w, b, **call_kwargs(spec, transposed=True))
+        y = self._call("transposed", self._transposed, x, w, b, **call_kwargs(spec, transposed=True))
         return check_array(self.name, "transposed", "y", y, spec.y_shape, spec.dtype)
+
+    def _call(self, method: str, fn, *args, **kwargs):
+        """Call the implementation; its own exceptions become AdapterRaised with the traceback."""
+        try:
+            return fn(*args, **kwargs)
+        except (AdapterCrashed, AdapterTimeout, AdapterRaised, AdapterOutputError):
+            raise
+        except Exception as exc:   # the adapter's own failure
+            import traceback
+            tb = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+            raise AdapterRaised(f"adapter {self.name} {method} raised {type(exc).__name__}: {exc}",
+                                tb) from exc
 
     def run(self, spec: ConvSpec, x, w, b=None) -> np.ndarray:
         """The spec's forward pass: forward() or transposed() by ``spec.transposed``."""

@@ -33,3 +33,28 @@ class AdapterOutputError(ConvWitnessError):
 
 class CaseFileError(ConvWitnessError):
     """A witness/case file that is corrupt, foreign or of another version."""
+
+
+class AdapterRaised(ConvWitnessError):
+    """The adapter raised an exception on a case it claims (verdict ``error``)."""
+
+    def __init__(self, message: str, traceback_text: str = "", output: str = ""):
+        super().__init__(message)
+        self.traceback_text = traceback_text
+        self.output = output
+
+
+class AdapterCrashed(ConvWitnessError):
+    """The adapter's process died (verdict ``crash``)."""
+
+    def __init__(self, message: str, output: str = ""):
+        super().__init__(message)
+        self.output = output
+
+
+class AdapterTimeout(ConvWitnessError):
+    """An adapter call ran past its time limit (verdict ``timeout``)."""
+
+    def __init__(self, message: str, output: str = ""):
+        super().__init__(message)
+        self.output = output

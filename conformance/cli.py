@@ -1,0 +1,201 @@
+"""The ``convwitness`` command line: ``parse_args`` then ``run(args, stdout, stderr)``."""
+from __future__ import annotations
+
+import argparse
+import enum
+import os
+import sys
+
+from .errors import AdapterLoadError, AdapterUnavailable, ConvWitnessError
+
+__all__ = ["ExitCode", "parse_args", "run", "main"]
+
+
+class ExitCode(enum.IntEnum):
+    OK = 0                  # every applicable invariant passed
+    FAILED = 1              # an invariant failed, errored, crashed or timed out
+    USAGE = 2               # bad command line or input file
+    NOT_LOADABLE = 3        # the adapter could not be loaded or is unavailable
+    INTERNAL = 4            # convwitness itself failed
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="convwitness", description=(
+        "Certify a convolution-layer implementation against a float64 reference with "
+        "derived rounding-error bounds. A passing report is evidence, not proof; an "
+        "adapter runs arbitrary code, so run untrusted ports in a sandbox."))
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    r = sub.add_parser("run", help="run the suite on an adapter and write a report")
+    r.add_argument("--adapter", required=True, help="built-in name, package.module:attr, file.py:attr or exec:COMMAND")
+    r.add_argument("--profile", default="quick", help="quick (CI-sized), standard or nightly")
+    r.add_argument("--only", default=None, help="comma-separated invariant ids or glob patterns (e.g. 'forward.*')")
+    r.add_argument("--seed", type=int, default=0, help="hypothesis seed (default 0)")
+    r.add_argument("--report", default=None, help="report folder (default reports/<adapter name>)")
+    r.add_argument("--no-shrink", action="store_true", help="skip shrinking (faster, larger witnesses)")
+    r.add_argument("--quiet", action="store_true", help="no progress lines")
+    _extend_run(r)
+
+    rp = sub.add_parser("replay", help="re-run one witness without hypothesis")
+    rp.add_argument("witness", help="a witness .json (or .npz) written by `run`")
+    rp.add_argument("--adapter", required=True)
+    rp.add_argument("--invariant", default=None, help="check another invariant on the witness case")
+
+    sub.add_parser("invariants", help="print the catalogue of invariants")
+    sub.add_parser("adapters", help="list the built-in adapters")
+    st = sub.add_parser("selftest", help="run the suite on the planted-bug zoo and the correct adapters")
+    st.add_argument("--profile", default="quick")
+    st.add_argument("--seed", type=int, default=0)
+    st.add_argument("--only", default=None, help="zoo entries to run (comma-separated names)")
+    _extend_sub(sub)
+    return p
+
+
+def _extend_run(r):
+    """Hook for options added by other modules (isolation, sharding)."""
+    try:
+        from . import cli_more
+    except ImportError:
+        return
+    cli_more.extend_run(r)
+
+
+def _extend_sub(sub):
+    try:
+        from . import cli_more
+    except ImportError:
+        return
+    cli_more.extend_sub(sub)
+
+
+def parse_args(argv=None) -> argparse.Namespace:
+    return _parser().parse_args(argv)
+
+
+def run(args: argparse.Namespace, stdout=None, stderr=None) -> int:
+    stdout = stdout or sys.stdout
+    stderr = stderr or sys.stderr
+    try:
+        handler = _HANDLERS.get(args.command)
+        if handler is None:
+            from . import cli_more
+            handler = cli_more.HANDLERS[args.command]
+        return int(handler(args, stdout, stderr))
+    except AdapterUnavailable as exc:
+        print(f"convwitness: {exc}", file=stderr)
+        return ExitCode.NOT_LOADABLE
+    except AdapterLoadError as exc:
+        print(f"convwitness: {exc}", file=stderr)
+        return ExitCode.NOT_LOADABLE
+    except ConvWitnessError as exc:
+        print(f"convwitness: {exc}", file=stderr)
+        return ExitCode.USAGE
+
+
+def _load(args):
+    from .loading import load_adapter
+    opts = {}
+    for name in ("isolation", "call_timeout", "memory_limit"):
+        if getattr(args, name, None) is not None:
+            opts[name] = getattr(args, name)
+    if opts:
+        from .isolation import load_isolated
+        return load_isolated(args.adapter, **opts)
+    return load_adapter(args.adapter)
+
+
+def cmd_run(args, stdout, stderr) -> int:
+    from .certify import certify
+    from .console import Progress, summary_table
+    from .profiles import get_profile
+    profile = get_profile(args.profile)
+    adapter = _load(args)
+    report_dir = args.report or os.path.join("reports", _safe(adapter.name))
+    progress = None if args.quiet else Progress(stderr)
+    extra = {}
+    if getattr(args, "shard", None):
+        from .shard import shard_filter
+        extra["work"], extra["shard"] = shard_filter(args.shard), args.shard
+    journal = None
+    try:
+        from .journal import Journal
+        journal = Journal.open(report_dir, adapter, profile, args.seed)
+    except ImportError:
+        pass
+    doc, results = certify(adapter, profile=profile, only=args.only, seed=args.seed,
+                           report_dir=report_dir, progress=progress, shrink=not args.no_shrink,
+                           journal=journal, **extra)
+    if journal is not None:
+        journal.close()
+    _write_views(doc, report_dir)
+    print(summary_table(doc), file=stdout)
+    print(f"report: {os.path.join(report_dir, 'report.json')}", file=stdout)
+    if not results:
+        print("convwitness: no invariant matched --only", file=stderr)
+        return ExitCode.USAGE
+    if doc["status"] == "partial" and not doc.get("shard"):
+        return ExitCode.FAILED
+    return ExitCode.OK if _all_passed(doc) else ExitCode.FAILED
+
+
+def _all_passed(doc) -> bool:
+    return all(r["verdict"] in ("pass", "not-applicable") or r["informational"]
+               for r in doc["invariants"]) and any(r["verdict"] == "pass" for r in doc["invariants"])
+
+
+def _write_views(doc, report_dir):
+    """Human and CI views beside report.json, where their writers are installed."""
+    try:
+        from .views import write_views
+    except ImportError:
+        return
+    write_views(doc, report_dir)
+
+
+def _safe(name: str) -> str:
+    return "".join(c if c.isalnum() or c in "-_." else "_" for c in name) or "adapter"
+
+
+def cmd_replay(args, stdout, stderr) -> int:
+    from .witness import replay
+    adapter = _load(args)
+    verdict, ev, message, meta = replay(args.witness, adapter, args.invariant)
+    print(f"{meta.get('invariant', args.invariant)} on {adapter.name}: {verdict}", file=stdout)
+    print(message, file=stdout)
+    if verdict in ("pass", "not-applicable"):
+        return ExitCode.OK
+    return ExitCode.FAILED
+
+
+def cmd_invariants(args, stdout, stderr) -> int:
+    from .invariants import catalogue
+    for inv in catalogue():
+        passes = ",".join(sorted(inv.passes))
+        print(f"{inv.id:34s} [{passes}] {inv.statement}", file=stdout)
+    return ExitCode.OK
+
+
+def cmd_adapters(args, stdout, stderr) -> int:
+    from .adapters_list import list_builtins
+    for row in list_builtins():
+        print(row, file=stdout)
+    return ExitCode.OK
+
+
+def cmd_selftest(args, stdout, stderr) -> int:
+    from .selftest import selftest
+    return selftest(profile=args.profile, seed=args.seed, only=args.only, stdout=stdout, stderr=stderr)
+
+
+_HANDLERS = {"run": cmd_run, "replay": cmd_replay, "invariants": cmd_invariants,
+             "adapters": cmd_adapters, "selftest": cmd_selftest}
+
+
+def main(argv=None) -> int:
+    args = parse_args(argv)
+    sys.exit(run(args))
+
+
+if __name__ == "__main__":
+    main()

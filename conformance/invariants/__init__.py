@@ -1,0 +1,110 @@
+"""The invariant catalogue.
+
+Each invariant is a small registered function ``check(adapter, case) -> Evidence``
+with an id such as ``forward.reference``, the adapter passes it needs, the cases it
+needs (:class:`~convwitness.strategies.Needs`) and a one-line statement; its
+docstring states the property in maths. ``catalogue()`` lists them in a fixed order.
+"""
+from __future__ import annotations
+
+import inspect
+from dataclasses import dataclass, field
+from typing import Callable
+
+from ..capabilities import Capabilities
+from ..errors import ConvWitnessError
+from ..profiles import Profile, get_profile
+from ..strategies import Needs
+
+__all__ = ["Invariant", "Context", "invariant", "catalogue", "get", "REGISTRY"]
+
+REGISTRY: dict[str, "Invariant"] = {}
+
+
+@dataclass
+class Context:
+    """Per-run information an invariant may use: the profile and state kept across examples."""
+
+    profile: Profile = field(default_factory=lambda: get_profile("quick"))
+    state: dict = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Invariant:
+    id: str
+    statement: str
+    passes: frozenset
+    needs: Needs
+    func: Callable = field(repr=False, compare=False)
+    requires: Callable | None = field(default=None, repr=False, compare=False)
+    informational_unless: str | None = None
+    adjust: Callable | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def property(self) -> str:
+        """The property in maths (the function's docstring)."""
+        return inspect.cleandoc(self.func.__doc__ or self.statement)
+
+    def refusal(self, caps: Capabilities) -> str | None:
+        """Why this invariant does not apply to an adapter, or None."""
+        missing = sorted(self.passes - caps.passes)
+        if missing:
+            return f"needs pass(es) {missing}, adapter offers {sorted(caps.passes)}"
+        if self.needs.transposed and "transposed" not in caps.passes:
+            return "needs the transposed pass"
+        if self.requires is not None:
+            return self.requires(caps)
+        return None
+
+    def needs_for(self, caps: Capabilities) -> Needs:
+        """The needs, adjusted to what the adapter can do (e.g. no dilation)."""
+        return self.adjust(caps, self.needs) if self.adjust else self.needs
+
+    def informational(self, caps: Capabilities) -> bool:
+        """Failures are information only unless the adapter claims the named capability."""
+        return bool(self.informational_unless) and not getattr(caps, self.informational_unless)
+
+    def check(self, adapter, case, context: Context | None = None):
+        return self.func(adapter, case, context or Context())
+
+
+def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | None = None,
+              requires=None, informational_unless: str | None = None, adjust=None):
+    """Register ``func(adapter, case, context) -> Evidence`` as an invariant."""
+    def deco(func):
+        if id in REGISTRY:
+            raise ConvWitnessError(f"invariant id {id!r} registered twice")
+        REGISTRY[id] = Invariant(id=id, statement=statement, passes=frozenset(passes),
+                                 needs=needs or Needs(), func=func, requires=requires,
+                                 informational_unless=informational_unless, adjust=adjust)
+        return func
+    return deco
+
+
+# Catalogue order: these modules first, then any other module of this package.
+_ORDER = ("forward", "equivalence", "state", "special", "backward", "own", "transposed", "precision")
+
+
+def _load():
+    import importlib
+    import pkgutil
+    found = [m.name for m in pkgutil.iter_modules(__path__) if not m.name.startswith("_")]
+    for name in [n for n in _ORDER if n in found] + sorted(set(found) - set(_ORDER)):
+        importlib.import_module(f"{__name__}.{name}")
+
+
+def catalogue() -> list[Invariant]:
+    """Every registered invariant, in registration order."""
+    _load()
+    return list(REGISTRY.values())
+
+
+def get(id: str) -> Invariant:
+    _load()
+    try:
+        return REGISTRY[id]
+    except KeyError:
+        import difflib
+        close = difflib.get_close_matches(id, list(REGISTRY), n=3)
+        hint = f" (did you mean {', '.join(close)}?)" if close else ""
+        raise ConvWitnessError(f"unknown invariant {id!r}{hint}; `convwitness invariants` lists them") from None

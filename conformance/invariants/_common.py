@@ -1,0 +1,109 @@
+"""Shared pieces of the invariants: references, bounds and judged comparisons."""
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from .. import reference as ref
+from ..bounds import U64, Bound, derive, gamma
+from ..evidence import Evidence, compare
+from ..formats import get_format
+
+__all__ = ["copies", "model_of", "pass_bound", "judge", "judge_pair", "forward_expected",
+           "run_forward", "dot_rounding", "overflow_free", "self_bound"]
+
+
+def copies(case):
+    """Fresh copies of x, w, b, grad_y (adapters may misbehave on the originals)."""
+    c = lambda a: None if a is None else a.copy()   # noqa: E731
+    return c(case.x), c(case.w), c(case.b), c(case.grad_y)
+
+
+def model_of(adapter, spec):
+    return adapter.capabilities.error_model_for(spec.dtype)
+
+
+def pass_bound(adapter, spec, pass_: str, arrays: dict) -> tuple[np.ndarray, Bound]:
+    """(float64 reference, Bound) of one pass of ``spec`` on ``arrays`` (x, w, b, grad_y)."""
+    x, w, b, g = arrays.get("x"), arrays.get("w"), arrays.get("b"), arrays.get("grad_y")
+    if pass_ in ("forward", "transposed"):
+        y = ref.forward(spec, x, w, b)
+        mag = ref.forward_magnitude(spec, x, w, b)
+        with_bias = b is not None
+    elif pass_ == "grad_input":
+        y, mag, with_bias = ref.grad_input(spec, w, g), ref.grad_input_magnitude(spec, w, g), False
+    elif pass_ == "grad_weight":
+        y, mag, with_bias = ref.grad_weight(spec, x, g), ref.grad_weight_magnitude(spec, x, g), False
+    elif pass_ == "grad_bias":
+        y, mag, with_bias = ref.grad_bias(spec, g), ref.grad_bias_magnitude(spec, g), False
+    else:
+        raise ValueError(pass_)
+    return y, derive(spec, model_of(adapter, spec), pass_, mag, y, with_bias=with_bias)
+
+
+def overflow_free(spec, adapter, bound: Bound) -> np.ndarray:
+    """Mask of elements where an intermediate or final overflow is possible."""
+    m = model_of(adapter, spec).resolve(spec.dtype)
+    top = min(get_format(m.accumulate).max, get_format(m.output).max)
+    mag = bound.magnitude
+    if mag is None:
+        return np.zeros(np.shape(bound.values), bool)
+    with np.errstate(over="ignore", invalid="ignore"):
+        return ~(mag * (1 + bound.coefficient) + bound.values < top)
+
+
+def judge(adapter, spec, actual, expected, bound: Bound, *, what: str, criterion: str,
+          exact: bool = False) -> Evidence:
+    """Compare ``actual`` with the reference within ``bound`` (elements that may overflow free)."""
+    return compare(actual, expected, bound.values, what=what, criterion=criterion,
+                   explanation=bound.explain(), exact=exact,
+                   allow=overflow_free(spec, adapter, bound))
+
+
+def judge_pair(adapter, spec, a, b, bound_values, *, what: str, criterion: str,
+               explanation: str, allow=None) -> Evidence:
+    """Compare two results of the adapter itself: ``|a - b| <= bound_values``."""
+    return compare(a, np.asarray(b, dtype=np.float64), bound_values, what=what,
+                   criterion=criterion, explanation=explanation, allow=allow)
+
+
+def run_forward(adapter, spec, x, w, b):
+    """The adapter's forward pass (transposed() for transposed specs) on copies."""
+    c = lambda a: None if a is None else a.copy()   # noqa: E731
+    return adapter.run(spec, c(x), c(w), c(b))
+
+
+def forward_expected(adapter, case):
+    return pass_bound(adapter, case.spec, "transposed" if case.spec.transposed else "forward",
+                      {"x": case.x, "w": case.w, "b": case.b})
+
+
+def dot_rounding(terms: int, magnitude: float) -> float:
+    """Rounding of a float64 inner product of ``terms`` terms whose Σ|a_i b_i| is ``magnitude``."""
+    return gamma(max(terms, 1), U64) * magnitude
+
+
+def self_bound(adapter, spec, x, w, b=None, y_hat=None) -> Bound:
+    """The forward bound for comparisons of the adapter with itself.
+
+    Derived as for the reference, but with magnitudes valid for the map the adapter
+    actually computes as well: ``max(|x|*|w| by the reference, f_adapter(|x|, |w|)/(1-c))``
+    (a sum of non-negative terms is computed with relative error at most c), and the
+    output-rounding term on ``max(|y_ref|, |y_hat|)``. For a correct adapter this is the
+    reference bound; for a wrong but consistent one (say, a swapped geometry) it keeps
+    linearity and equivalence checks about their own property.
+    """
+    y_ref, bound = pass_bound(adapter, spec, "transposed" if spec.transposed else "forward",
+                              {"x": x, "w": w, "b": b})
+    own = run_forward(adapter, spec, np.abs(x), np.abs(w), None if b is None else np.abs(b))
+    own = own.astype(np.float64)
+    c = bound.coefficient
+    with np.errstate(over="ignore", invalid="ignore"):
+        own_mag = np.where(np.isfinite(own), own / max(1 - c, 1e-300), np.inf) if c < 1 else \
+            np.full(own.shape, np.inf)
+        mag = np.maximum(bound.magnitude, own_mag)
+        big = np.abs(y_ref) if y_hat is None else np.maximum(np.abs(y_ref), np.abs(y_hat.astype(np.float64)))
+        values = bound.coefficient * mag + bound.u_out * big + bound.absolute
+    return replace(bound, values=values, magnitude=mag,
+                   explanation=bound.explanation + "; magnitudes also from the adapter's own |x|,|w| pass")
