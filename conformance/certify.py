@@ -23,8 +23,14 @@ def certify(adapter, *, profile="quick", only: str | None = None, seed: int | No
     chosen = select(adapter.capabilities, only)
     if work is not None:
         chosen = work(chosen)
+    own_journal = False
     if report_dir:
         os.makedirs(report_dir, exist_ok=True)
+        if journal is None:
+            from .journal import Journal
+            journal = Journal.open(report_dir, adapter, profile, seed,
+                                   planned=[inv.id for inv, _ in chosen], shard=shard)
+            own_journal = True
     started = time.time()
     t0 = time.perf_counter()
     results: list[InvariantResult] = []
@@ -45,6 +51,8 @@ def certify(adapter, *, profile="quick", only: str | None = None, seed: int | No
         status = "partial"
         if progress:
             progress("interrupted", {"done": len(results), "total": len(chosen)})
+    if own_journal:
+        journal.close()
     doc = build_report(adapter, results, profile=profile, seed=seed, started=started,
                        duration_s=time.perf_counter() - t0, shard=shard,
                        status="partial" if shard else status)

@@ -35,12 +35,17 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--report", default=None, help="report folder (default reports/<adapter name>)")
     r.add_argument("--no-shrink", action="store_true", help="skip shrinking (faster, larger witnesses)")
     r.add_argument("--quiet", action="store_true", help="no progress lines")
+    _isolation_options(r)
     _extend_run(r)
 
     rp = sub.add_parser("replay", help="re-run one witness without hypothesis")
     rp.add_argument("witness", help="a witness .json (or .npz) written by `run`")
     rp.add_argument("--adapter", required=True)
     rp.add_argument("--invariant", default=None, help="check another invariant on the witness case")
+    _isolation_options(rp)
+
+    rb = sub.add_parser("rebuild", help="rebuild DIR/report.json from the journal of an interrupted run")
+    rb.add_argument("report", help="the report folder of the interrupted run")
 
     sub.add_parser("invariants", help="print the catalogue of invariants")
     sub.add_parser("adapters", help="list the built-in adapters")
@@ -52,21 +57,46 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+def _memory(text: str) -> int:
+    units = {"k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}
+    t = text.strip().lower().removesuffix("ib").removesuffix("b")
+    try:
+        if t and t[-1] in units:
+            return int(float(t[:-1]) * units[t[-1]])
+        return int(t)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--memory-limit {text!r}: expected bytes or a size like "
+                                         "512MiB or 4GiB") from None
+
+
+def _isolation_options(p):
+    p.add_argument("--isolation", choices=("process", "none"), default="process",
+                   help="run adapter calls in a worker process (default) or in-process (faster, "
+                        "for debugging; a crash then ends the run)")
+    p.add_argument("--call-timeout", type=float, default=None,
+                   help="seconds per adapter call before it is killed (default: the profile's)")
+    p.add_argument("--memory-limit", type=_memory, default=None,
+                   help="memory cap of the worker process (default 4GiB)")
+    if p.prog.endswith(" run"):
+        p.add_argument("--invariant-budget", type=float, default=None, metavar="SECONDS",
+                       help="wall-time budget of one invariant, shrinking included (default: the profile's)")
+
+
 def _extend_run(r):
     """Hook for options added by other modules (isolation, sharding)."""
     try:
-        from . import cli_more
+        from . import cli_outputs
     except ImportError:
         return
-    cli_more.extend_run(r)
+    cli_outputs.extend_run(r)
 
 
 def _extend_sub(sub):
     try:
-        from . import cli_more
+        from . import cli_outputs
     except ImportError:
         return
-    cli_more.extend_sub(sub)
+    cli_outputs.extend_sub(sub)
 
 
 def parse_args(argv=None) -> argparse.Namespace:
@@ -79,8 +109,8 @@ def run(args: argparse.Namespace, stdout=None, stderr=None) -> int:
     try:
         handler = _HANDLERS.get(args.command)
         if handler is None:
-            from . import cli_more
-            handler = cli_more.HANDLERS[args.command]
+            from . import cli_outputs
+            handler = cli_outputs.HANDLERS[args.command]
         return int(handler(args, stdout, stderr))
     except AdapterUnavailable as exc:
         print(f"convwitness: {exc}", file=stderr)
@@ -93,16 +123,11 @@ def run(args: argparse.Namespace, stdout=None, stderr=None) -> int:
         return ExitCode.USAGE
 
 
-def _load(args):
-    from .loading import load_adapter
-    opts = {}
-    for name in ("isolation", "call_timeout", "memory_limit"):
-        if getattr(args, name, None) is not None:
-            opts[name] = getattr(args, name)
-    if opts:
-        from .isolation import load_isolated
-        return load_isolated(args.adapter, **opts)
-    return load_adapter(args.adapter)
+def _load(args, profile=None):
+    from .isolation import load_isolated
+    timeout = args.call_timeout or (profile.call_timeout if profile is not None else 60.0)
+    return load_isolated(args.adapter, isolation=args.isolation, call_timeout=timeout,
+                         memory_limit=args.memory_limit)
 
 
 def cmd_run(args, stdout, stderr) -> int:
@@ -110,24 +135,24 @@ def cmd_run(args, stdout, stderr) -> int:
     from .console import Progress, summary_table
     from .profiles import get_profile
     profile = get_profile(args.profile)
-    adapter = _load(args)
+    if args.invariant_budget is not None:
+        import dataclasses
+        profile = dataclasses.replace(profile, budget_s=args.invariant_budget)
+    adapter = _load(args, profile)
     report_dir = args.report or os.path.join("reports", _safe(adapter.name))
     progress = None if args.quiet else Progress(stderr)
     extra = {}
     if getattr(args, "shard", None):
         from .shard import shard_filter
         extra["work"], extra["shard"] = shard_filter(args.shard), args.shard
-    journal = None
     try:
-        from .journal import Journal
-        journal = Journal.open(report_dir, adapter, profile, args.seed)
-    except ImportError:
-        pass
-    doc, results = certify(adapter, profile=profile, only=args.only, seed=args.seed,
-                           report_dir=report_dir, progress=progress, shrink=not args.no_shrink,
-                           journal=journal, **extra)
-    if journal is not None:
-        journal.close()
+        doc, results = certify(adapter, profile=profile, only=args.only, seed=args.seed,
+                               report_dir=report_dir, progress=progress, shrink=not args.no_shrink,
+                               **extra)
+    finally:
+        close = getattr(adapter, "close", None)
+        if close is not None:
+            close()
     _write_views(doc, report_dir)
     print(summary_table(doc), file=stdout)
     print(f"report: {os.path.join(report_dir, 'report.json')}", file=stdout)
@@ -135,6 +160,8 @@ def cmd_run(args, stdout, stderr) -> int:
         print("convwitness: no invariant matched --only", file=stderr)
         return ExitCode.USAGE
     if doc["status"] == "partial" and not doc.get("shard"):
+        print(f"convwitness: interrupted after {len(results)} invariant(s); the partial report "
+              "is written (status partial)", file=stderr)
         return ExitCode.FAILED
     return ExitCode.OK if _all_passed(doc) else ExitCode.FAILED
 
@@ -168,6 +195,17 @@ def cmd_replay(args, stdout, stderr) -> int:
     return ExitCode.FAILED
 
 
+def cmd_rebuild(args, stdout, stderr) -> int:
+    from .console import summary_table
+    from .journal import rebuild
+    doc = rebuild(args.report)
+    _write_views(doc, args.report)
+    print(summary_table(doc), file=stdout)
+    print(f"rebuilt {os.path.join(args.report, 'report.json')} from the journal "
+          f"({len(doc['invariants'])} invariants, status {doc['status']})", file=stdout)
+    return ExitCode.OK if _all_passed(doc) and doc["status"] == "complete" else ExitCode.FAILED
+
+
 def cmd_invariants(args, stdout, stderr) -> int:
     from .invariants import catalogue
     for inv in catalogue():
@@ -188,7 +226,7 @@ def cmd_selftest(args, stdout, stderr) -> int:
     return selftest(profile=args.profile, seed=args.seed, only=args.only, stdout=stdout, stderr=stderr)
 
 
-_HANDLERS = {"run": cmd_run, "replay": cmd_replay, "invariants": cmd_invariants,
+_HANDLERS = {"run": cmd_run, "replay": cmd_replay, "invariants": cmd_invariants, "rebuild": cmd_rebuild,
              "adapters": cmd_adapters, "selftest": cmd_selftest}
 
 

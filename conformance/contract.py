@@ -41,6 +41,9 @@ def call_kwargs(spec: ConvSpec, transposed: bool = False) -> dict:
 
 
 def _describe(value) -> str:
+    described = getattr(value, "__convwitness_describe__", None)
+    if callable(described):
+        return described()
     if isinstance(value, np.ndarray):
         return f"numpy.ndarray shape={value.shape} dtype={value.dtype}"
     if value is None:

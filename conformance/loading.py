@@ -133,6 +133,11 @@ def _instantiate(obj, text: str):
         except TypeError as exc:
             raise AdapterLoadError(f"adapter {text!r}: class {obj.__name__} must be constructible "
                                    f"without arguments ({exc})") from None
+        except AdapterLoadError:
+            raise
+        except Exception as exc:
+            raise AdapterLoadError(f"adapter {text!r}: {obj.__name__}() raised "
+                                   f"{type(exc).__name__}: {exc}") from None
     if hasattr(obj, "forward") and callable(obj.forward):
         return obj
     if not callable(obj):
@@ -148,7 +153,13 @@ def _instantiate(obj, text: str):
                 p.kind not in (p.VAR_POSITIONAL, p.VAR_KEYWORD)]
     has_var_kw = any(p.kind == p.VAR_KEYWORD for p in params)
     if not required:
-        made = obj()
+        try:
+            made = obj()
+        except AdapterLoadError:
+            raise
+        except Exception as exc:
+            raise AdapterLoadError(f"adapter {text!r}: factory {getattr(obj, '__name__', obj)}() "
+                                   f"raised {type(exc).__name__}: {exc}") from None
         if hasattr(made, "forward") or callable(made):
             return made
         raise AdapterLoadError(f"adapter {text!r}: factory returned {type(made).__name__}, expected "

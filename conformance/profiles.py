@@ -30,6 +30,7 @@ class Profile:
     repeats: int             # repetitions in determinism checks
     deadline_ms: int | None  # hypothesis deadline per example (None: off)
     call_timeout: float      # seconds per adapter call under process isolation
+    budget_s: float = 120.0  # wall-time budget of one invariant, shrinking included
     stress: bool = False     # long accumulations (nightly)
 
     def to_dict(self) -> dict:
@@ -44,15 +45,15 @@ PROFILES = {
         Profile("quick", examples=20, values=2, max_batch=3, max_channels=4, max_groups=3,
                 max_kernel=4, max_stride=3, max_dilation=3, max_padding=3,
                 max_spatial=(17, 9, 5), max_elements=4096, repeats=4, deadline_ms=None,
-                call_timeout=60.0),
+                call_timeout=30.0, budget_s=90.0),
         Profile("standard", examples=80, values=3, max_batch=4, max_channels=6, max_groups=4,
                 max_kernel=5, max_stride=4, max_dilation=3, max_padding=4,
                 max_spatial=(33, 17, 7), max_elements=32768, repeats=10, deadline_ms=None,
-                call_timeout=120.0),
+                call_timeout=120.0, budget_s=600.0),
         Profile("nightly", examples=300, values=4, max_batch=6, max_channels=9, max_groups=4,
                 max_kernel=7, max_stride=4, max_dilation=4, max_padding=5,
                 max_spatial=(65, 33, 11), max_elements=262144, repeats=20, deadline_ms=None,
-                call_timeout=300.0, stress=True),
+                call_timeout=300.0, budget_s=3600.0, stress=True),
     )
 }
 

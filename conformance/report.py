@@ -58,6 +58,8 @@ def _share(x: float):
 
 
 def result_to_dict(r) -> dict:
+    if isinstance(r, dict):
+        return r
     return {
         "id": r.id, "statement": r.statement, "property": r.property, "passes": list(r.passes),
         "verdict": r.verdict, "informational": bool(r.informational),

@@ -25,7 +25,7 @@ from .invariants import Context, Invariant, catalogue
 from .profiles import Profile, get_profile
 from .strategies import examples, feature_of
 
-__all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "VERDICTS"]
+__all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "VERDICTS", "BudgetExhausted"]
 
 VERDICTS = ("pass", "fail", "error", "crash", "timeout", "not-applicable", "unavailable")
 MAX_SHARES = 400
@@ -90,6 +90,12 @@ def hypothesis_settings(profile: Profile, database_dir: str | None, *, shrink: b
     )
 
 
+class BudgetExhausted(BaseException):
+    """Raised inside a hypothesis test when an invariant has used its time budget.
+
+    A BaseException, so hypothesis stops instead of treating it as a failure."""
+
+
 class _Tally:
     """What the test body saw: counts, shares, coverage and the last failing case."""
 
@@ -100,6 +106,8 @@ class _Tally:
         self.worst: Evidence | None = None
         self.failure = None          # (case, evidence or exception)
         self.coverage: Counter = Counter()
+        self.started: float | None = None
+        self.stopped = False
 
     def record(self, case, ev: Evidence):
         share = float(ev.share)
@@ -118,6 +126,12 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
     strategy = examples(adapter.capabilities, profile, inv.needs_for(adapter.capabilities))
 
     def body(cases):
+        now = time.perf_counter()
+        if tally.started is None:
+            tally.started = now
+        elif now - tally.started > profile.budget_s:
+            tally.stopped = True
+            raise BudgetExhausted(f"{inv.id} used its budget of {profile.budget_s:g} s")
         tally.geometries += 1
         spec = cases[0].spec
         for k, v in feature_of(spec).items():
@@ -148,6 +162,10 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
     return test, tally
 
 
+def _failure_exception(what):
+    return InvariantFailure(what) if isinstance(what, Evidence) else what
+
+
 def _verdict_of(exc) -> str:
     if isinstance(exc, (InvariantFailure, AdapterOutputError)):
         return "fail"
@@ -174,7 +192,14 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     test, tally = hypothesis_test(adapter, inv, profile, seed, db, shrink=shrink)
     t0 = time.perf_counter()
     try:
-        test()
+        try:
+            test()
+        except BudgetExhausted:
+            if tally.failure is None:
+                res.reason = (f"stopped at the time budget of {profile.budget_s:g} s after "
+                              f"{tally.examples} examples")
+            else:
+                raise _failure_exception(tally.failure[1]) from None
     except Unsatisfiable as exc:
         res.verdict = "not-applicable"
         res.reason = f"no admitted geometry could be drawn: {exc}"
@@ -193,6 +218,19 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         res.message = (f"internal error in convwitness while checking {inv.id}: "
                        f"{type(exc).__name__}: {exc}")
         res.traceback = traceback.format_exc()
+    if tally.failure is not None and res.verdict in ("fail", "error", "crash", "timeout"):
+        # the message of the minimal case (the last failing execution), to match the witness
+        what = tally.failure[1]
+        res.verdict = _verdict_of(what if not isinstance(what, Evidence) else InvariantFailure(what))
+        res.message = what.message if isinstance(what, Evidence) else str(what)
+        if isinstance(what, AdapterRaised):
+            res.traceback = what.traceback_text
+    if tally.stopped and tally.failure is not None:
+        res.reason = f"shrinking stopped at the time budget of {profile.budget_s:g} s"
+    drain = getattr(adapter, "drain_output", None)
+    if drain is not None:
+        text = drain()
+        res.output = (res.output + text)[-20000:] if text else res.output[-20000:]
     res.duration_s = time.perf_counter() - t0
     res.examples, res.geometries = tally.examples, tally.geometries
     res.shares = tally.shares

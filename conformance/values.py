@@ -97,7 +97,7 @@ def _scale_near_max(spec, arrays):
     top = float(mag.max()) if mag.size else 0.0
     if top <= 0 or not np.isfinite(top):
         return
-    k = math.floor(math.log2(fmt.max / 4 / top))
+    k = math.floor(math.log2(fmt.max) - 2 - math.log2(top))
     arrays["x"] = x * 2.0 ** k
     if b is not None:
         arrays["b"] = to_format(b, spec.dtype).astype(np.float64) * 2.0 ** k

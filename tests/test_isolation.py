@@ -1,0 +1,137 @@
+"""Process isolation, the journal and interrupted runs, through the real CLI.
+
+Each faulty adapter must give its verdict, the run must finish within its bounds,
+the report must validate against the shipped schema (convwitness.report), and the
+exit code must be 1 — 0 for the adapter that only prints.
+"""
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+
+from convwitness.report import load_report
+
+FIXTURE = os.path.join(os.path.dirname(__file__), "fixtures", "faulty_adapters.py")
+BASE = ["--profile", "quick", "--only", "forward.reference,forward.contract",
+        "--call-timeout", "2", "--invariant-budget", "12", "--memory-limit", "1GiB", "--quiet"]
+
+
+def _run(args, cwd, timeout=240):
+    t0 = time.monotonic()
+    proc = subprocess.run([sys.executable, "-m", "convwitness.cli", *args], cwd=cwd,
+                          capture_output=True, text=True, timeout=timeout)
+    return proc, time.monotonic() - t0
+
+
+CASES = [
+    ("Segfaulting", "crash", "SIGSEGV"),
+    ("Exiting", "crash", "exit code 3"),
+    ("MemoryHungry", "crash", "memory limit"),
+    ("Hanging", "timeout", "did not answer within 2 s"),
+    ("ReturnsList", "fail", "got list"),
+    ("ReturnsNone", "fail", "got None"),
+    ("WrongShape", "fail", "got shape="),
+    ("WrongDtype", "fail", "got dtype="),
+    ("Raising", "error", "RuntimeError: this port has no kernel"),
+]
+
+
+@pytest.mark.parametrize("cls,verdict,words", CASES, ids=[c[0] for c in CASES])
+def test_faulty_adapter_gets_its_verdict(tmp_path, cls, verdict, words):
+    report = tmp_path / "r"
+    proc, took = _run(["run", "--adapter", f"{FIXTURE}:{cls}", "--report", str(report), *BASE], tmp_path)
+    assert proc.returncode == 1, proc.stderr
+    doc = load_report(str(report / "report.json"))          # validates against the schema
+    ref = next(r for r in doc["invariants"] if r["id"] == "forward.reference")
+    assert ref["verdict"] == verdict, ref["message"]
+    assert words in ref["message"]
+    assert ref["witness"] is not None and os.path.isfile(report / ref["witness"]["path"])
+    if verdict == "error":
+        assert "RuntimeError" in ref["traceback"]
+    # bounded: two invariants, each within its 12 s budget plus one 2 s call
+    assert took < 2 * (12 + 2) + 30
+
+
+def test_printing_adapter_passes_and_its_output_is_kept(tmp_path):
+    report = tmp_path / "r"
+    proc, _ = _run(["run", "--adapter", f"{FIXTURE}:Printing", "--report", str(report), *BASE], tmp_path)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    doc = load_report(str(report / "report.json"))
+    ref = next(r for r in doc["invariants"] if r["id"] == "forward.reference")
+    assert ref["verdict"] == "pass"
+    assert "debug: forward" in ref["output"] and "raw bytes on fd 2" in ref["output"]
+
+
+def test_crashing_worker_is_replaced_and_witness_replays(tmp_path):
+    report = tmp_path / "r"
+    _run(["run", "--adapter", f"{FIXTURE}:Segfaulting", "--report", str(report), *BASE], tmp_path)
+    doc = load_report(str(report / "report.json"))
+    ref = next(r for r in doc["invariants"] if r["id"] == "forward.reference")
+    # shrinking kept going after the first crash: many examples, each retry in a fresh worker
+    assert ref["examples"] > 2
+    proc, _ = _run(["replay", str(report / ref["witness"]["path"]), "--adapter",
+                    f"{FIXTURE}:Segfaulting", "--call-timeout", "5"], tmp_path)
+    assert proc.returncode == 1 and "crash" in proc.stdout
+    proc, _ = _run(["replay", str(report / ref["witness"]["path"]), "--adapter", "reference"], tmp_path)
+    assert proc.returncode == 0, proc.stdout
+
+
+def _journal_results(path):
+    if not os.path.exists(path):
+        return []
+    with open(path) as fh:
+        return [json.loads(l)["result"]["id"] for l in fh if l.strip() and '"result"' in l]
+
+
+def test_sigkill_midway_rebuilds_every_finished_invariant(tmp_path):
+    report = tmp_path / "r"
+    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli", "run", "--adapter",
+                             f"{FIXTURE}:Printing", "--report", str(report), "--profile", "standard",
+                             "--quiet"], cwd=tmp_path, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    journal = report / "journal.jsonl"
+    deadline = time.monotonic() + 120
+    while len(_journal_results(journal)) < 3 and time.monotonic() < deadline:
+        time.sleep(0.2)
+    proc.kill()
+    proc.wait()
+    finished = _journal_results(journal)
+    assert len(finished) >= 3
+    out, _ = _run(["rebuild", str(report)], tmp_path)
+    doc = load_report(str(report / "report.json"))
+    assert doc["status"] == "partial" and doc["conformant"] is False
+    assert [r["id"] for r in doc["invariants"]] == finished
+    assert out.returncode == 1
+
+
+def test_ctrl_c_writes_a_partial_report(tmp_path):
+    report = tmp_path / "r"
+    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli", "run", "--adapter",
+                             f"{FIXTURE}:Printing", "--report", str(report), "--profile", "standard",
+                             "--quiet"], cwd=tmp_path, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    journal = report / "journal.jsonl"
+    deadline = time.monotonic() + 120
+    while len(_journal_results(journal)) < 2 and time.monotonic() < deadline:
+        time.sleep(0.2)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 1, err
+    doc = load_report(str(report / "report.json"))
+    assert doc["status"] == "partial"
+    assert len(doc["invariants"]) >= 2
+    assert "interrupted" in err
+
+
+def test_isolation_none_runs_in_process(tmp_path):
+    report = tmp_path / "r"
+    proc, _ = _run(["run", "--adapter", "reference", "--report", str(report), "--isolation", "none",
+                    "--only", "forward.reference", "--quiet"], tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    assert load_report(str(report / "report.json"))["conformant"] is True
