@@ -95,6 +95,9 @@ class Plan:
 
     def _phase_slices(self):
         """For each phase: (source slices over S, destination slices over Q) or None."""
+        cached = getattr(self, "_slices", None)
+        if cached is not None:
+            return cached
         result = []
         for a in itertools.product(*(range(s) for s in self.s)):
             src, dst = [], []
@@ -112,6 +115,7 @@ class Plan:
                 result.append((tuple(src), tuple(dst)))
                 continue
             result.append(None)
+        self._slices = result
         return result
 
     # -- data movement -----------------------------------------------------------

@@ -75,6 +75,7 @@ class ErrorModel:
     output: str | None = None
     algorithm: str = "direct"
     block: int | None = None
+    tile: int | None = None
     note: str = ""
 
     def __post_init__(self):
@@ -88,6 +89,8 @@ class ErrorModel:
                               f"{', '.join(ALGORITHMS)}")
         if self.block is not None and (not isinstance(self.block, int) or self.block < 1):
             raise FormatError(f"ErrorModel: block={self.block!r} must be a positive int or None")
+        if self.tile is not None and self.tile not in (2, 4):
+            raise FormatError(f"ErrorModel: tile={self.tile!r}; Winograd F(m,3) is modelled for m = 2 or 4")
 
     def resolve(self, dtype: str) -> "ResolvedModel":
         acc = self.accumulate or dtype
@@ -104,11 +107,11 @@ class ErrorModel:
     def to_dict(self) -> dict:
         return {"accumulate": self.accumulate, "product": self.product, "operand": self.operand,
                 "output": self.output, "algorithm": self.algorithm, "block": self.block,
-                "note": self.note}
+                "tile": self.tile, "note": self.note}
 
     @classmethod
     def from_dict(cls, d: dict) -> "ErrorModel":
-        return cls(**{k: d.get(k) for k in ("accumulate", "product", "operand", "output", "block")},
+        return cls(**{k: d.get(k) for k in ("accumulate", "product", "operand", "output", "block", "tile")},
                    algorithm=d.get("algorithm", "direct"), note=d.get("note", "") or "")
 
     def describe(self, dtype: str | None = None) -> str:
@@ -122,6 +125,8 @@ class ErrorModel:
                  f"{self.accumulate or 'dtype'}, output {self.output or 'dtype'}")
         if self.block:
             s += f", blocks of {self.block}"
+        if self.tile:
+            s += f", F({self.tile},3)"
         return s
 
 
@@ -183,6 +188,7 @@ class Bound:
     explanation: str = ""
     exact_limit: float = 0.0
     vacuous: bool = False
+    overflow: np.ndarray | None = field(default=None, repr=False, compare=False)
 
     def explain(self) -> str:
         """One line: how the bound was built."""
@@ -191,9 +197,6 @@ class Bound:
 
 def _inner_coefficient(m: ResolvedModel, n_add: int, products: bool) -> tuple[float, str]:
     """Relative error coefficient e of one accumulated element, and its description."""
-    if m.algorithm != "direct":
-        from . import fastbounds                 # models of fast algorithms
-        return fastbounds.coefficient(m, n_add, products)
     u_acc = m.u_acc
     if m.block:
         # Blocked accumulation: each block of `block` terms summed (block-1 additions),
@@ -222,14 +225,21 @@ def _inner_coefficient(m: ResolvedModel, n_add: int, products: bool) -> tuple[fl
 
 
 def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
-           with_bias: bool = False) -> Bound:
+           with_bias: bool = False, arrays: dict | None = None) -> Bound:
     """Bound on ``|actual - reference|`` for every element of one pass.
 
     ``magnitude`` is the pass applied to absolute values (``reference.*_magnitude``),
     ``reference`` the float64 result, ``with_bias`` whether a bias joins the sum
-    (forward pass only).
+    (forward pass only). Fast-algorithm models (winograd, fft) need the operands in
+    ``arrays`` (x, w, b).
     """
     m = model.resolve(spec.dtype)
+    if m.algorithm != "direct":
+        fast = _fast(spec, model, m, pass_, magnitude, reference, arrays)
+        if fast is not None:
+            return fast
+        m = ErrorModel(accumulate=model.accumulate, product=model.product, operand=model.operand,
+                       output=model.output).resolve(spec.dtype)
     n = spec.accumulation_length("forward" if pass_ == "transposed" else pass_)
     products = pass_ != "grad_bias"
     terms = n + (1 if with_bias else 0)
@@ -239,9 +249,11 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
     u_out = m.u_out
     coeff = (1 + u_out) * (e + 2 * ref_e) * (1 + ref_e)
     out_fmt = get_format(m.output)
-    absolute = out_fmt.smallest_subnormal / 2
+    # Gradual underflow: a rounding below the normal range errs by at most half the
+    # smallest subnormal (rounded up to a whole one, so float64's does not vanish).
+    absolute = out_fmt.smallest_subnormal
     if products and m.u_p:
-        absolute += n * get_format(m.product).smallest_subnormal / 2 * (1 + u_out)
+        absolute += max(n / 2, 1) * get_format(m.product).smallest_subnormal * (1 + u_out)
     mag = np.asarray(magnitude, dtype=np.float64)
     ref = np.asarray(reference, dtype=np.float64)
     vacuous = not math.isfinite(e)
@@ -257,6 +269,31 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
     return Bound(pass_=pass_, n=n, coefficient=coeff, u_out=u_out, absolute=absolute,
                  values=values, magnitude=mag, explanation=explanation, exact_limit=m.exact_limit(),
                  vacuous=vacuous)
+
+
+def _fast(spec, model, m, pass_, magnitude, reference, arrays):
+    from . import fastbounds
+    if arrays is None:
+        raise FormatError(f"derive: the {m.algorithm} model needs the operands; pass arrays={{x, w, b}}")
+    if pass_ == "transposed" or spec.transposed:
+        return None                          # fast paths cover the convolution itself
+    got = fastbounds.fast_bound(spec, model, pass_, arrays["x"], arrays["w"], arrays.get("b"), reference)
+    if got is None:
+        return None
+    values, coeff, mag, overflow, under, desc = got
+    n = spec.accumulation_length("forward")
+    terms = n + (1 if arrays.get("b") is not None else 0)
+    ref_e = gamma(terms, U64)
+    u_out = m.u_out
+    ref = np.abs(np.asarray(reference, dtype=np.float64))
+    out_fmt = get_format(m.output)
+    mag_ref = np.asarray(magnitude, dtype=np.float64)
+    absolute = out_fmt.smallest_subnormal + under
+    total = (1 + u_out) * values + u_out * ref + 2 * ref_e * mag_ref + absolute
+    return Bound(pass_=pass_, n=n, coefficient=coeff * (1 + u_out), u_out=u_out,
+                 absolute=absolute, values=total, magnitude=mag,
+                 explanation=f"{desc}, plus output rounding u={_fmt_u(u_out)} ({m.output}) and the "
+                             f"float64 reference's γ_{terms}", exact_limit=0.0, overflow=overflow)
 
 
 def _mag_name(pass_: str) -> str:

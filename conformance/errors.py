@@ -30,6 +30,10 @@ class AdapterUnavailable(AdapterLoadError):
 class AdapterOutputError(ConvWitnessError):
     """An adapter returned something other than the contract promises."""
 
+    def __init__(self, message: str, output: str = ""):
+        super().__init__(message)
+        self.output = output
+
 
 class CaseFileError(ConvWitnessError):
     """A witness/case file that is corrupt, foreign or of another version."""

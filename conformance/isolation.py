@@ -368,9 +368,17 @@ def load_isolated(spec: str, *, isolation: str = "process", call_timeout: float 
     from .loading import load_adapter
     if isolation not in ("process", "none"):
         raise AdapterLoadError(f"--isolation {isolation!r}: expected 'process' or 'none'")
-    if isolation == "none" or (isinstance(spec, str) and spec.startswith("exec:")):
-        opts = {"call_timeout": call_timeout} if (call_timeout and str(spec).startswith("exec:")) else {}
-        return load_adapter(spec, **opts)
+    if isinstance(spec, str) and spec.startswith("exec:"):
+        opts = {"call_timeout": call_timeout or 60.0}
+        if memory_limit is not None or isolation == "process":
+            opts["memory_limit"] = DEFAULT_MEMORY_LIMIT if memory_limit is None else memory_limit
+        adapter = load_adapter(spec, **opts)
+        for name in ("drain_output", "close"):
+            if hasattr(adapter.target, name):
+                setattr(adapter, name, getattr(adapter.target, name))
+        return adapter
+    if isolation == "none":
+        return load_adapter(spec)
     target = ProcessAdapter(spec, call_timeout=call_timeout or 60.0,
                             memory_limit=DEFAULT_MEMORY_LIMIT if memory_limit is None else memory_limit)
     adapter = Adapter(target, source=spec)

@@ -10,7 +10,9 @@ Features (per spatial axis unless said): ``plain``; ``remainder``
 (asymmetric padding, each order); ``window_in_padding`` (p_lo >= e: the first window
 reads only padding); ``kernel_fills_input`` (L_out = 1); ``unit_length`` (L = 1);
 ``pointwise`` (1x1 kernels); ``dilated_strided`` (d >= 2 with s >= 2);
-``vector_width`` (channel counts 7/8/9, 15/16/17); ``zero_batch`` (N = 0).
+``vector_width`` (channel counts 7/8/9, 15/16/17); ``everyday`` (3-tap kernels, stride
+1, no dilation, padding 0 or 1: the shape fast paths such as Winograd serve);
+``zero_batch`` (N = 0).
 Channel structure: one group, 1 < G < C_in, depthwise with multiplier 1 and > 1.
 """
 from __future__ import annotations
@@ -32,7 +34,7 @@ __all__ = ["Needs", "FEATURES", "GROUPINGS", "specs", "cases", "examples", "feat
 
 FEATURES = ("plain", "remainder", "stride_over_kernel", "anisotropic", "pad_before", "pad_after",
             "window_in_padding", "kernel_fills_input", "unit_length", "pointwise",
-            "dilated_strided", "vector_width", "zero_batch")
+            "dilated_strided", "vector_width", "everyday", "zero_batch")
 GROUPINGS = ("single", "grouped", "depthwise", "depthwise_multiplier")
 VECTOR_WIDTH_COUNTS = (7, 8, 9, 15, 16, 17)
 
@@ -86,7 +88,9 @@ def _check_args(capabilities, profile, needs):
 
 
 def _features(caps: Capabilities, needs: Needs, ndim: int) -> list[str]:
-    out = list(needs.features or FEATURES)
+    # the everyday 3-tap convolution is listed twice: it is the shape real code (and its
+    # fast paths) serves most, so it gets twice the share of draws
+    out = list(needs.features or FEATURES + ("everyday",))
     asym = "asymmetric" in caps.padding
     stride_ok = caps.stride and needs.stride is not False
     dil_ok = caps.dilation and needs.dilation is not False
@@ -114,6 +118,13 @@ def _axis(draw, feature: str, caps: Capabilities, profile: Profile, ndim: int, n
     pmax = profile.max_padding
     kmax = profile.max_kernel
     lmax = profile.max_spatial[ndim - 1]
+    if feature == "everyday":
+        lo = hi = draw(st.integers(0, 1), label="pad") if needs.padding is not False else 0
+        if needs.transposed:
+            L = draw(st.integers(1, max(1, min(lmax, 8))), label="length")
+            return max(L, 2), 3, 1, 1, lo, hi, 0
+        L = draw(st.integers(max(1, 3 - 2 * lo), max(3, lmax)), label="length")
+        return L, 3, 1, 1, lo, hi, 0
     k = 1 if feature == "pointwise" else draw(st.integers(1, kmax), label="kernel")
     d = 1
     if caps.dilation and needs.dilation is not False and k > 1:

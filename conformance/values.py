@@ -98,16 +98,16 @@ def _scale_near_max(spec, arrays):
     if top <= 0 or not np.isfinite(top):
         return
     k = math.floor(math.log2(fmt.max) - 2 - math.log2(top))
-    arrays["x"] = x * 2.0 ** k
+    arrays["x"] = np.ldexp(x, k)
     if b is not None:
-        arrays["b"] = to_format(b, spec.dtype).astype(np.float64) * 2.0 ** k
+        arrays["b"] = np.ldexp(to_format(b, spec.dtype).astype(np.float64), k)
     arrays["w"] = w
     xmax = float(np.abs(arrays["x"]).max()) if arrays["x"].size else 0.0
     if xmax > fmt.max:
         # move part of the scale into w
         shift = math.ceil(math.log2(xmax / fmt.max)) + 1
-        arrays["x"] = arrays["x"] * 2.0 ** -shift
-        arrays["w"] = w * 2.0 ** shift
+        arrays["x"] = np.ldexp(arrays["x"], -shift)
+        arrays["w"] = np.ldexp(w, shift)
 
 
 def _plant_special(rng, spec, kind, arrays):

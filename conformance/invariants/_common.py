@@ -39,7 +39,8 @@ def pass_bound(adapter, spec, pass_: str, arrays: dict) -> tuple[np.ndarray, Bou
         y, mag, with_bias = ref.grad_bias(spec, g), ref.grad_bias_magnitude(spec, g), False
     else:
         raise ValueError(pass_)
-    return y, derive(spec, model_of(adapter, spec), pass_, mag, y, with_bias=with_bias)
+    return y, derive(spec, model_of(adapter, spec), pass_, mag, y, with_bias=with_bias,
+                     arrays={"x": x, "w": w, "b": b} if pass_ in ("forward", "transposed") else None)
 
 
 def overflow_free(spec, adapter, bound: Bound) -> np.ndarray:
@@ -50,7 +51,10 @@ def overflow_free(spec, adapter, bound: Bound) -> np.ndarray:
     if mag is None:
         return np.zeros(np.shape(bound.values), bool)
     with np.errstate(over="ignore", invalid="ignore"):
-        return ~(mag * (1 + bound.coefficient) + bound.values < top)
+        free = ~(mag * (1 + bound.coefficient) + bound.values < top)
+    if bound.overflow is not None:
+        free = free | bound.overflow
+    return free
 
 
 def judge(adapter, spec, actual, expected, bound: Bound, *, what: str, criterion: str,
@@ -104,6 +108,6 @@ def self_bound(adapter, spec, x, w, b=None, y_hat=None) -> Bound:
             np.full(own.shape, np.inf)
         mag = np.maximum(bound.magnitude, own_mag)
         big = np.abs(y_ref) if y_hat is None else np.maximum(np.abs(y_ref), np.abs(y_hat.astype(np.float64)))
-        values = bound.coefficient * mag + bound.u_out * big + bound.absolute
+        values = np.maximum(bound.values, bound.coefficient * mag + bound.u_out * big + bound.absolute)
     return replace(bound, values=values, magnitude=mag,
                    explanation=bound.explanation + "; magnitudes also from the adapter's own |x|,|w| pass")
