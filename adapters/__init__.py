@@ -12,6 +12,10 @@ BUILTINS: dict[str, str] = {
     "jax": "convwitness.adapters.jax_lax:JaxAdapter",
     "onnxruntime": "convwitness.adapters.onnxruntime_node:OnnxRuntimeAdapter",
     "scipy": "convwitness.adapters.scipy_signal:ScipyAdapter",
+    "scipy-fft": "convwitness.adapters.scipy_fft:ScipyFftAdapter",
+    "tessera-npu": "convwitness.adapters.tessera:TesseraNPU",
+    "winograd-f2": "convwitness.adapters.winograd:WinogradF2",
+    "winograd-f4": "convwitness.adapters.winograd:WinogradF4",
 }
 
 __all__ = ["BUILTINS"]

@@ -195,24 +195,25 @@ class Bound:
         return self.explanation
 
 
-def _inner_coefficient(m: ResolvedModel, n_add: int, products: bool) -> tuple[float, str]:
+def _inner_coefficient(m: ResolvedModel, n_add: int, products: bool,
+                       block_terms: int | None = None) -> tuple[float, str]:
     """Relative error coefficient e of one accumulated element, and its description."""
     u_acc = m.u_acc
-    if m.block:
-        # Blocked accumulation: each block of `block` terms summed (block-1 additions),
-        # then the n_blocks partial sums summed (n_blocks-1 additions).
-        nb = -(-(n_add + 1) // m.block)
-        adds = (min(m.block, n_add + 1) - 1) + (nb - 1)
-        acc_desc = f"blocks of {m.block}: {adds} additions"
+    if block_terms:
+        # Blocked accumulation: each block of `block_terms` terms summed (block_terms-1
+        # additions), then the partial sums of the n_blocks blocks summed (n_blocks-1).
+        nb = -(-(n_add + 1) // block_terms)
+        adds = (min(block_terms, n_add + 1) - 1) + (nb - 1)
+        acc_desc = f"{nb} block(s) of {block_terms} terms: {adds} additions"
     else:
         adds = n_add
         acc_desc = None
     u_in2 = (1 + m.u_in) ** 2 - 1 if products else m.u_in
     u_p = m.u_p if products else 0.0
-    if products and u_in2 == 0 and u_p == u_acc and not m.block:
+    if products and u_in2 == 0 and u_p == u_acc and not block_terms:
         n = adds + 1
         return gamma(n, u_acc), f"γ_{n} at u={_fmt_u(u_acc)}"
-    if not products and m.u_in == 0 and not m.block:
+    if not products and m.u_in == 0 and not block_terms:
         return gamma(adds, u_acc), f"γ_{adds} at u={_fmt_u(u_acc)} (sums only)"
     e = (1 + u_in2) * (1 + u_p) * (1 + gamma(adds, u_acc)) - 1
     parts = []
@@ -244,7 +245,12 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
     products = pass_ != "grad_bias"
     terms = n + (1 if with_bias else 0)
     n_add = max(terms - 1, 0)
-    e, desc = _inner_coefficient(m, n_add, products)
+    block_terms = None
+    if m.block:
+        # channels per partial sum (times the taps) for forward and input gradient;
+        # output positions per partial sum for the weight and bias gradients
+        block_terms = m.block * (spec.taps if pass_ in ("forward", "transposed", "grad_input") else 1)
+    e, desc = _inner_coefficient(m, n_add, products, block_terms)
     ref_e = gamma(terms, U64)
     u_out = m.u_out
     coeff = (1 + u_out) * (e + 2 * ref_e) * (1 + ref_e)

@@ -44,7 +44,7 @@ PROFILES = {
     for p in (
         Profile("quick", examples=20, values=2, max_batch=3, max_channels=4, max_groups=3,
                 max_kernel=4, max_stride=3, max_dilation=3, max_padding=3,
-                max_spatial=(17, 9, 5), max_elements=4096, repeats=4, deadline_ms=None,
+                max_spatial=(17, 9, 5), max_elements=8192, repeats=4, deadline_ms=None,
                 call_timeout=30.0, budget_s=90.0),
         Profile("standard", examples=80, values=3, max_batch=4, max_channels=6, max_groups=4,
                 max_kernel=5, max_stride=4, max_dilation=3, max_padding=4,

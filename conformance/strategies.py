@@ -9,11 +9,13 @@ Features (per spatial axis unless said): ``plain``; ``remainder``
 ``anisotropic`` (axes differ in k, s, d, p and size); ``pad_before`` / ``pad_after``
 (asymmetric padding, each order); ``window_in_padding`` (p_lo >= e: the first window
 reads only padding); ``kernel_fills_input`` (L_out = 1); ``unit_length`` (L = 1);
-``pointwise`` (1x1 kernels); ``dilated_strided`` (d >= 2 with s >= 2);
-``vector_width`` (channel counts 7/8/9, 15/16/17); ``everyday`` (3-tap kernels, stride
+``pointwise`` (1x1 kernels); ``dilated_strided`` (d >= 2 with s >= 2); ``everyday`` (3-tap kernels, stride
 1, no dilation, padding 0 or 1: the shape fast paths such as Winograd serve);
 ``zero_batch`` (N = 0).
-Channel structure: one group, 1 < G < C_in, depthwise with multiplier 1 and > 1.
+Channel structure, drawn independently of the feature: one group, 1 < G < C_in,
+depthwise with multiplier 1 and > 1; channel counts small, or (half the draws) on
+either side of vector and tile widths: 7/8/9, 15/16/17, 31/32/33 (the spatial size is
+then kept small enough for the profile's element budget).
 """
 from __future__ import annotations
 
@@ -34,9 +36,9 @@ __all__ = ["Needs", "FEATURES", "GROUPINGS", "specs", "cases", "examples", "feat
 
 FEATURES = ("plain", "remainder", "stride_over_kernel", "anisotropic", "pad_before", "pad_after",
             "window_in_padding", "kernel_fills_input", "unit_length", "pointwise",
-            "dilated_strided", "vector_width", "everyday", "zero_batch")
+            "dilated_strided", "everyday", "zero_batch")
 GROUPINGS = ("single", "grouped", "depthwise", "depthwise_multiplier")
-VECTOR_WIDTH_COUNTS = (7, 8, 9, 15, 16, 17)
+THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
 
 
 @dataclass(frozen=True)
@@ -113,11 +115,11 @@ def _features(caps: Capabilities, needs: Needs, ndim: int) -> list[str]:
     return kept or ["plain"]
 
 
-def _axis(draw, feature: str, caps: Capabilities, profile: Profile, ndim: int, needs: Needs):
+def _axis(draw, feature: str, caps: Capabilities, profile: Profile, ndim: int, needs: Needs,
+          lmax: int):
     """One axis: (L, k, s, d, lo, hi, op)."""
     pmax = profile.max_padding
     kmax = profile.max_kernel
-    lmax = profile.max_spatial[ndim - 1]
     if feature == "everyday":
         lo = hi = draw(st.integers(0, 1), label="pad") if needs.padding is not False else 0
         if needs.transposed:
@@ -186,23 +188,26 @@ def _axis(draw, feature: str, caps: Capabilities, profile: Profile, ndim: int, n
     return L, k, s, d, lo, hi, op
 
 
-def _channels(draw, caps: Capabilities, profile: Profile, needs: Needs, feature: str):
-    choices = list(GROUPINGS) if caps.groups and needs.grouped is not False else ["single"]
+def _channels(draw, caps: Capabilities, profile: Profile, needs: Needs):
+    # one group is the common case: it gets two shares of the draws
+    choices = ["single"] + list(GROUPINGS) if caps.groups and needs.grouped is not False else ["single"]
     if needs.grouped:
         choices = [g for g in choices if g != "single"] or ["grouped"]
     kind = draw(st.sampled_from(choices), label="grouping")
     cmax = profile.max_channels
-    if feature == "vector_width":
-        per_in = draw(st.sampled_from(VECTOR_WIDTH_COUNTS), label="channels_in")
-        per_out = draw(st.sampled_from((1, 2) + VECTOR_WIDTH_COUNTS[:3]), label="channels_out")
-        if kind == "single":
-            return 1, per_in, per_out, kind
-        kind = "depthwise"
-        return per_in, per_in, per_in, kind
+    threshold = kind in ("single", "depthwise", "depthwise_multiplier") and \
+        draw(st.sampled_from(("small", "threshold")), label="channel_counts") == "threshold"
     if kind == "single":
+        if threshold:
+            cin = draw(st.sampled_from(THRESHOLD_COUNTS), label="channels_in")
+            outs = (1, 2, 3) if cin > 16 else (1, 2, 3) + THRESHOLD_COUNTS
+            return 1, cin, draw(st.sampled_from(outs), label="channels_out"), kind
         return 1, draw(st.integers(1, cmax), label="channels_in"), \
             draw(st.integers(1, cmax), label="channels_out"), kind
-    G = draw(st.integers(2, max(2, profile.max_groups)), label="groups")
+    if threshold:
+        G = draw(st.sampled_from(THRESHOLD_COUNTS), label="groups")
+    else:
+        G = draw(st.integers(2, max(2, profile.max_groups)), label="groups")
     if kind == "grouped":
         cg = draw(st.integers(2, max(2, cmax)), label="channels_per_group")
         og = draw(st.integers(1, cmax), label="outputs_per_group")
@@ -230,7 +235,17 @@ def _spec(draw, caps: Capabilities, profile: Profile, needs: Needs):
                         f"invariant's needs leave ndims={ndims}, dtypes={dtypes}, layouts={layouts}")
     ndim = draw(st.sampled_from(ndims), label="ndim")
     feature = draw(st.sampled_from(_features(caps, needs, ndim)), label="feature")
-    axes = [_axis(draw, feature, caps, profile, ndim, needs) for _ in range(ndim)]
+    G, cin, cout, _grouping = _channels(draw, caps, profile, needs)
+    if feature == "zero_batch" or needs.zero_batch:
+        batch = 0
+    else:
+        batch = draw(st.integers(max(1, needs.batch_min), max(1, needs.batch_min, profile.max_batch)),
+                     label="batch")
+    # spatial sizes within the element budget for these channel counts
+    per_position = max(1, batch) * max(cin, cout, 1)
+    lcap = int((profile.max_elements / per_position) ** (1.0 / ndim))
+    lmax = max(1, min(profile.max_spatial[ndim - 1], lcap))
+    axes = [_axis(draw, feature, caps, profile, ndim, needs, lmax) for _ in range(ndim)]
     if feature == "anisotropic":
         assume(len({a[1:] for a in axes}) > 1 and len({a[0] for a in axes}) > 1)
     if needs.stride:
@@ -241,12 +256,6 @@ def _spec(draw, caps: Capabilities, profile: Profile, needs: Needs):
         assume(any(a[4] or a[5] for a in axes))
     if needs.negative_padding:
         assume(any(a[4] < 0 or a[5] < 0 for a in axes))
-    G, cin, cout, _grouping = _channels(draw, caps, profile, needs, feature)
-    if feature == "zero_batch" or needs.zero_batch:
-        batch = 0
-    else:
-        batch = draw(st.integers(max(1, needs.batch_min), max(1, needs.batch_min, profile.max_batch)),
-                     label="batch")
     bias = needs.bias if needs.bias is not None else (caps.bias and draw(st.booleans(), label="bias"))
     if bias and not caps.bias:
         assume(False)
