@@ -176,7 +176,7 @@ def test_blocked_accumulation_counts_additions():
     x, _, g, _ = _data(SPEC27)
     bound = derive(SPEC27, ErrorModel(block=8), "grad_weight", ref.grad_weight_magnitude(SPEC27, x, g),
                    ref.grad_weight(SPEC27, x, g))
-    assert "γ_10 at u=2^-24 (blocks of 8: 10 additions)" in bound.explain()     # 32 terms: 7 + 3
+    assert "γ_10 at u=2^-24 (4 block(s) of 8 terms: 10 additions)" in bound.explain()     # 32 terms: 7 + 3
 
 
 # -- exact_limit: integer data summed exactly ------------------------------------------------
