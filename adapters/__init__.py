@@ -9,7 +9,10 @@ from __future__ import annotations
 BUILTINS: dict[str, str] = {
     "reference": "convwitness.adapters.reference:ReferenceAdapter",
     "torch": "convwitness.adapters.torch_nn:TorchAdapter",
+    "torch-bf16": "convwitness.adapters.torch_nn:torch_bf16",
+    "torch-channels-last": "convwitness.adapters.torch_nn:torch_channels_last",
     "jax": "convwitness.adapters.jax_lax:JaxAdapter",
+    "jax-bf16": "convwitness.adapters.jax_lax:jax_bf16",
     "onnxruntime": "convwitness.adapters.onnxruntime_node:OnnxRuntimeAdapter",
     "scipy": "convwitness.adapters.scipy_signal:ScipyAdapter",
     "scipy-fft": "convwitness.adapters.scipy_fft:ScipyFftAdapter",

@@ -63,7 +63,7 @@ class JaxAdapter:
 
     name = "jax"
 
-    def __init__(self):
+    def __init__(self, dtypes=("float32", "float64"), name: str | None = None, error_models=()):
         try:
             import jax
             import jax.numpy as jnp
@@ -76,9 +76,12 @@ class JaxAdapter:
         self.version = jax.__version__
         self.trace_count = 0
         self._cache: dict = {}
+        if name:
+            self.name = name
         self.capabilities = Capabilities(
             ndims=frozenset({1, 2, 3}),
-            dtypes=frozenset({"float32", "float64"}),
+            dtypes=frozenset(dtypes),
+            error_models=tuple(error_models),
             layouts=frozenset({"channels_first", "channels_last"}),
             # not "negative": XLA's CPU float32 2-D convolution reads memory outside the
             # input when one axis is padded (-p, +p) (garbage, NaN, inf; float64 is right)
@@ -201,3 +204,16 @@ class JaxAdapter:
                             b is not None, output_padding)
         y = fn(x, w) if b is None else fn(x, w, b)
         return np.array(y)
+
+
+def jax_bf16():
+    """``jax-bf16``: XLA's CPU convolution in bfloat16, under the model it follows.
+
+    XLA computes bfloat16 convolutions in float32 (products exact, float32 sums) and
+    rounds the convolution to bfloat16; the bias is then added in bfloat16, a second
+    rounding (``ErrorModel.bias_add``)."""
+    from convwitness.formats import numpy_dtype
+    numpy_dtype("bfloat16")                       # needs ml_dtypes
+    model = ErrorModel(product="float32", accumulate="float32", bias_add="bfloat16",
+                       note="XLA CPU: float32 compute, rounded to bfloat16, then + bias in bfloat16")
+    return JaxAdapter(dtypes=("bfloat16",), name="jax-bf16", error_models=(("bfloat16", model),))

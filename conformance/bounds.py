@@ -76,10 +76,11 @@ class ErrorModel:
     algorithm: str = "direct"
     block: int | None = None
     tile: int | None = None
+    bias_add: str | None = None
     note: str = ""
 
     def __post_init__(self):
-        for name in ("accumulate", "product", "operand", "output"):
+        for name in ("accumulate", "product", "operand", "output", "bias_add"):
             v = getattr(self, name)
             if v is not None and v not in FORMATS:
                 raise FormatError(f"ErrorModel: {name}={v!r} is not a known format; expected one "
@@ -107,11 +108,12 @@ class ErrorModel:
     def to_dict(self) -> dict:
         return {"accumulate": self.accumulate, "product": self.product, "operand": self.operand,
                 "output": self.output, "algorithm": self.algorithm, "block": self.block,
-                "tile": self.tile, "note": self.note}
+                "tile": self.tile, "bias_add": self.bias_add, "note": self.note}
 
     @classmethod
     def from_dict(cls, d: dict) -> "ErrorModel":
-        return cls(**{k: d.get(k) for k in ("accumulate", "product", "operand", "output", "block", "tile")},
+        return cls(**{k: d.get(k) for k in ("accumulate", "product", "operand", "output", "block",
+                                             "tile", "bias_add")},
                    algorithm=d.get("algorithm", "direct"), note=d.get("note", "") or "")
 
     def describe(self, dtype: str | None = None) -> str:
@@ -127,6 +129,8 @@ class ErrorModel:
             s += f", blocks of {self.block}"
         if self.tile:
             s += f", F({self.tile},3)"
+        if self.bias_add:
+            s += f", bias added after rounding, in {self.bias_add}"
         return s
 
 
@@ -235,6 +239,8 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
     ``arrays`` (x, w, b).
     """
     m = model.resolve(spec.dtype)
+    if model.bias_add and with_bias and arrays is not None and arrays.get("b") is not None:
+        return _bias_after(spec, model, pass_, magnitude, reference, arrays)
     if m.algorithm != "direct":
         fast = _fast(spec, model, m, pass_, magnitude, reference, arrays)
         if fast is not None:
@@ -275,6 +281,25 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
     return Bound(pass_=pass_, n=n, coefficient=coeff, u_out=u_out, absolute=absolute,
                  values=values, magnitude=mag, explanation=explanation, exact_limit=m.exact_limit(),
                  vacuous=vacuous)
+
+
+def _bias_after(spec, model, pass_, magnitude, reference, arrays) -> Bound:
+    """The convolution rounded to the output first, then the bias added in ``bias_add``:
+    |y_hat - y| <= (1 + u_b) B_conv + u_b |y|."""
+    from dataclasses import replace as _replace
+    b = np.abs(np.asarray(arrays["b"], dtype=np.float64))
+    shape = (-1,) if spec.layout == "channels_last" else (-1,) + (1,) * spec.ndim
+    braw = np.asarray(arrays["b"], dtype=np.float64).reshape(shape)
+    ref = np.asarray(reference, dtype=np.float64)
+    conv = derive(spec, _replace(model, bias_add=None), pass_,
+                  np.asarray(magnitude, dtype=np.float64) - b.reshape(shape), ref - braw,
+                  with_bias=False, arrays={**arrays, "b": None})
+    fb = get_format(model.bias_add)
+    values = (1 + fb.u) * conv.values + fb.u * np.abs(ref) + fb.smallest_subnormal
+    return _replace(conv, values=values, magnitude=np.asarray(magnitude, dtype=np.float64),
+                    coefficient=conv.coefficient * (1 + fb.u),
+                    explanation=conv.explanation + f"; then the bias added in {model.bias_add} "
+                                                   f"(u={_fmt_u(fb.u)})")
 
 
 def _fast(spec, model, m, pass_, magnitude, reference, arrays):

@@ -40,8 +40,9 @@ def _frozen(name, value, allowed=None, kind=str):
 class Capabilities:
     """What an adapter claims. ``admits(spec)`` says whether a geometry is claimed.
 
-    ``error_models`` maps a dtype to its :class:`ErrorModel`; dtypes not listed use
-    ``error_model``. ``max_elements`` caps the number of elements of any one array
+    ``error_models`` maps a dtype, or ``"dtype/pass"`` (pass one of forward, transposed,
+    grad_input, grad_weight, grad_bias), to its :class:`ErrorModel`; the most specific
+    entry wins, and ``error_model`` covers the rest. ``max_elements`` caps the number of elements of any one array
     (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
     """
 
@@ -72,21 +73,27 @@ class Capabilities:
         em = self.error_models
         if isinstance(em, Mapping):
             em = tuple(sorted(em.items()))
+        passes = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
         for item in em:
             if not (isinstance(item, tuple) and len(item) == 2 and isinstance(item[1], ErrorModel)):
                 raise SpecError(f"Capabilities: error_models entry {item!r} must be "
-                                "(dtype, ErrorModel)")
+                                "(dtype or 'dtype/pass', ErrorModel)")
+            dt, _, ps = item[0].partition("/")
+            if dt not in STORAGE_FORMATS or (ps and ps not in passes):
+                raise SpecError(f"Capabilities: error_models key {item[0]!r}; expected a dtype "
+                                f"({', '.join(STORAGE_FORMATS)}) or 'dtype/pass' with pass in "
+                                f"{', '.join(passes)}")
         set_(self, "error_models", tuple(em))
         if not isinstance(self.error_model, ErrorModel):
             raise SpecError(f"Capabilities: error_model={self.error_model!r} must be an ErrorModel")
         if self.max_elements is not None and (not isinstance(self.max_elements, int) or self.max_elements < 1):
             raise SpecError(f"Capabilities: max_elements={self.max_elements!r} must be a positive int or None")
 
-    def error_model_for(self, dtype: str) -> ErrorModel:
-        for name, model in self.error_models:
-            if name == dtype:
-                return model
-        return self.error_model
+    def error_model_for(self, dtype: str, pass_: str | None = None) -> ErrorModel:
+        table = dict(self.error_models)
+        if pass_ is not None and f"{dtype}/{pass_}" in table:
+            return table[f"{dtype}/{pass_}"]
+        return table.get(dtype, self.error_model)
 
     def refusal(self, spec: ConvSpec) -> str | None:
         """Why the spec is outside the claimed space, or None when it is admitted."""

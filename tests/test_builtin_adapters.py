@@ -90,7 +90,7 @@ def draw(spec, seed=0):
 
 
 def check(adapter, spec, pass_, got, expected, magnitude, with_bias=False):
-    model = adapter.capabilities.error_model_for(spec.dtype)
+    model = adapter.capabilities.error_model_for(spec.dtype, pass_)
     bound = derive(spec, model, pass_, magnitude, expected, with_bias=with_bias)
     err = np.abs(got.astype(np.float64) - expected)
     bad = ~(err <= bound.values)

@@ -20,8 +20,11 @@ def copies(case):
     return c(case.x), c(case.w), c(case.b), c(case.grad_y)
 
 
-def model_of(adapter, spec):
-    return adapter.capabilities.error_model_for(spec.dtype)
+def model_of(adapter, spec, pass_: str | None = None):
+    """The declared error model for the spec's dtype (and pass, where one is declared)."""
+    if pass_ is None:
+        pass_ = "transposed" if spec.transposed else "forward"
+    return adapter.capabilities.error_model_for(spec.dtype, pass_)
 
 
 def pass_bound(adapter, spec, pass_: str, arrays: dict) -> tuple[np.ndarray, Bound]:
@@ -39,13 +42,13 @@ def pass_bound(adapter, spec, pass_: str, arrays: dict) -> tuple[np.ndarray, Bou
         y, mag, with_bias = ref.grad_bias(spec, g), ref.grad_bias_magnitude(spec, g), False
     else:
         raise ValueError(pass_)
-    return y, derive(spec, model_of(adapter, spec), pass_, mag, y, with_bias=with_bias,
+    return y, derive(spec, model_of(adapter, spec, pass_), pass_, mag, y, with_bias=with_bias,
                      arrays={"x": x, "w": w, "b": b} if pass_ in ("forward", "transposed") else None)
 
 
 def overflow_free(spec, adapter, bound: Bound) -> np.ndarray:
     """Mask of elements where an intermediate or final overflow is possible."""
-    m = model_of(adapter, spec).resolve(spec.dtype)
+    m = model_of(adapter, spec, bound.pass_).resolve(spec.dtype)
     top = min(get_format(m.accumulate).max, get_format(m.output).max)
     mag = bound.magnitude
     if mag is None:
