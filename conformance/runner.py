@@ -24,7 +24,7 @@ from .errors import (AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterT
 from .evidence import Evidence, InvariantFailure
 from .invariants import Context, Invariant, catalogue
 from .profiles import Profile, get_profile
-from .strategies import examples, feature_of
+from .strategies import feature_of
 
 __all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "VERDICTS", "BudgetExhausted"]
 
@@ -109,6 +109,8 @@ class _Tally:
         self.coverage: Counter = Counter()
         self.started: float | None = None
         self.stopped = False
+        self.vacuous = 0
+        self.vacuous_why = ""
 
     def record(self, case, ev: Evidence):
         share = float(ev.share)
@@ -124,7 +126,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
     """The hypothesis test of one invariant on one adapter (call it to run)."""
     tally = tally if tally is not None else _Tally()
     context = context or Context(profile=profile)
-    strategy = examples(adapter.capabilities, profile, inv.needs_for(adapter.capabilities))
+    strategy = inv.strategy(adapter.capabilities, profile)
 
     def body(cases):
         now = time.perf_counter()
@@ -150,6 +152,9 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
                 tally.failure = (case, exc)
                 raise
             tally.record(case, ev)
+            if ev.details.get("vacuous"):
+                tally.vacuous += 1
+                tally.vacuous_why = ev.details["vacuous"]
             worst = max(worst, min(float(ev.share), 1e12))
             if not ev.ok:
                 tally.failure = (case, ev)
@@ -230,6 +235,9 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         res.message = what.message if isinstance(what, Evidence) else str(what)
         if isinstance(what, AdapterRaised):
             res.traceback = what.traceback_text
+    if tally.vacuous:
+        res.reason = (f"{tally.vacuous} of {tally.examples} examples had a vacuous bound (n·u >= 1): "
+                      f"{tally.vacuous_why}").strip()
     if tally.stopped and tally.failure is not None:
         res.reason = f"shrinking stopped at the time budget of {profile.budget_s:g} s"
     drain = getattr(adapter, "drain_output", None)

@@ -39,6 +39,7 @@ class Invariant:
     requires: Callable | None = field(default=None, repr=False, compare=False)
     informational_unless: str | None = None
     adjust: Callable | None = field(default=None, repr=False, compare=False)
+    cases: Callable | None = field(default=None, repr=False, compare=False)
 
     @property
     def property(self) -> str:
@@ -60,6 +61,13 @@ class Invariant:
         """The needs, adjusted to what the adapter can do (e.g. no dilation)."""
         return self.adjust(caps, self.needs) if self.adjust else self.needs
 
+    def strategy(self, caps: Capabilities, profile: Profile):
+        """The hypothesis strategy of this invariant's examples (tuples of Cases)."""
+        from ..strategies import examples
+        if self.cases is not None:
+            return self.cases(caps, get_profile(profile))
+        return examples(caps, profile, self.needs_for(caps))
+
     def informational(self, caps: Capabilities) -> bool:
         """Failures are information only unless the adapter claims the named capability."""
         return bool(self.informational_unless) and not getattr(caps, self.informational_unless)
@@ -69,20 +77,21 @@ class Invariant:
 
 
 def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | None = None,
-              requires=None, informational_unless: str | None = None, adjust=None):
+              requires=None, informational_unless: str | None = None, adjust=None, cases=None):
     """Register ``func(adapter, case, context) -> Evidence`` as an invariant."""
     def deco(func):
         if id in REGISTRY:
             raise ConvWitnessError(f"invariant id {id!r} registered twice")
         REGISTRY[id] = Invariant(id=id, statement=statement, passes=frozenset(passes),
                                  needs=needs or Needs(), func=func, requires=requires,
-                                 informational_unless=informational_unless, adjust=adjust)
+                                 informational_unless=informational_unless, adjust=adjust,
+                                 cases=cases)
         return func
     return deco
 
 
 # Catalogue order: these modules first, then any other module of this package.
-_ORDER = ("forward", "equivalence", "state", "special", "backward", "own", "transposed", "precision")
+_ORDER = ("forward", "equivalence", "state", "special", "backward", "own", "transposed", "precision", "stress")
 
 
 def _load():

@@ -63,9 +63,12 @@ def overflow_free(spec, adapter, bound: Bound) -> np.ndarray:
 def judge(adapter, spec, actual, expected, bound: Bound, *, what: str, criterion: str,
           exact: bool = False) -> Evidence:
     """Compare ``actual`` with the reference within ``bound`` (elements that may overflow free)."""
-    return compare(actual, expected, bound.values, what=what, criterion=criterion,
-                   explanation=bound.explain(), exact=exact,
-                   allow=overflow_free(spec, adapter, bound))
+    ev = compare(actual, expected, bound.values, what=what, criterion=criterion,
+                 explanation=bound.explain(), exact=exact,
+                 allow=overflow_free(spec, adapter, bound))
+    if bound.vacuous:
+        ev.details["vacuous"] = bound.explain()
+    return ev
 
 
 def judge_pair(adapter, spec, a, b, bound_values, *, what: str, criterion: str,
