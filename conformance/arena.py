@@ -2,7 +2,9 @@
 
 An arena is a file in ``/dev/shm`` (a temporary folder elsewhere) mapped by both
 processes. ``pack`` writes numpy arrays into it (64-byte aligned) and returns a small
-header; ``unpack`` rebuilds them. Values that are not arrays (None, lists, an
+header; ``unpack`` rebuilds them. A non-contiguous view (a step slice, a channel
+slice, permuted storage) keeps its strides on the way, so an implementation in the
+worker sees the same kind of array the invariant passed. Values that are not arrays (None, lists, an
 adapter's mistaken return value) travel in the header: small built-in values as
 themselves, anything else as a description, so the contract check can still say
 exactly what came.
@@ -17,7 +19,7 @@ import uuid
 
 import numpy as np
 
-__all__ = ["Arena", "pack", "unpack", "Foreign", "describe_foreign"]
+__all__ = ["Arena", "pack", "unpack", "Foreign", "describe_foreign", "copy_keeping_strides"]
 
 _ALIGN = 64
 _DIR = "/dev/shm" if os.path.isdir("/dev/shm") and os.access("/dev/shm", os.W_OK) else tempfile.gettempdir()
@@ -109,18 +111,50 @@ def _plain(value) -> bool:
     return False
 
 
+def _view_strides(a: np.ndarray):
+    """The strides of a non-contiguous, non-overlapping view with positive strides (and
+    the bytes it spans), or None where a packed copy is all that can travel."""
+    if a.flags.c_contiguous or a.size == 0 or any(s <= 0 for s in a.strides):
+        return None
+    extent = a.itemsize
+    for stride, n in sorted(zip(a.strides, a.shape)):
+        if n == 1:
+            continue
+        if stride < extent:                      # elements overlap (a broadcast-like view)
+            return None
+        extent = stride * n
+    span = sum((n - 1) * s for n, s in zip(a.shape, a.strides)) + a.itemsize
+    return tuple(a.strides), span
+
+
+def copy_keeping_strides(a: np.ndarray) -> np.ndarray:
+    """A fresh copy of ``a``; a non-contiguous view is copied into a view with the same
+    strides over a zeroed buffer of its own (``ndarray.copy`` would pack it)."""
+    kept = _view_strides(a)
+    if kept is None:
+        return a.copy()
+    strides, span = kept
+    base = np.zeros(span, dtype=np.uint8)
+    out = np.ndarray(a.shape, dtype=a.dtype, buffer=base, strides=strides)
+    np.copyto(out, a, casting="no")
+    return out
+
+
 def pack(arena: Arena, items) -> list:
     """Write the arrays among ``items`` into ``arena``; returns the header."""
-    sizes = [(_ALIGN + it.nbytes) if isinstance(it, np.ndarray) else 0 for it in items]
+    kept = [_view_strides(it) if isinstance(it, np.ndarray) else None for it in items]
+    sizes = [(_ALIGN + (k[1] if k else it.nbytes)) if isinstance(it, np.ndarray) else 0
+             for it, k in zip(items, kept)]
     arena.ensure(sum(sizes) + _ALIGN)
     header, offset = [], 0
-    for it in items:
+    for it, k in zip(items, kept):
         if isinstance(it, np.ndarray):
             offset = -(-offset // _ALIGN) * _ALIGN
-            view = np.ndarray(it.shape, dtype=it.dtype, buffer=arena.map, offset=offset)
+            view = np.ndarray(it.shape, dtype=it.dtype, buffer=arena.map, offset=offset,
+                              strides=k[0] if k else None)
             np.copyto(view, it, casting="no")
-            header.append(("array", offset, _code(it.dtype), it.shape))
-            offset += it.nbytes
+            header.append(("array", offset, _code(it.dtype), it.shape) + ((k[0],) if k else ()))
+            offset += k[1] if k else it.nbytes
         elif _plain(it):
             header.append(("value", pickle.dumps(it)))
         else:
@@ -151,9 +185,11 @@ def unpack(arena: Arena, header, copy: bool = True) -> list:
     for entry in header:
         kind = entry[0]
         if kind == "array":
-            _, offset, code, shape = entry
-            a = np.ndarray(tuple(shape), dtype=_dtype(code), buffer=arena.map, offset=offset)
-            out.append(a.copy() if copy else a)
+            offset, code, shape = entry[1:4]
+            strides = tuple(entry[4]) if len(entry) > 4 else None
+            a = np.ndarray(tuple(shape), dtype=_dtype(code), buffer=arena.map, offset=offset,
+                           strides=strides)
+            out.append(copy_keeping_strides(a) if copy else a)
         elif kind == "value":
             out.append(pickle.loads(entry[1]))
         else:

@@ -203,6 +203,9 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                 # overflow and invalid-value warnings are expected on near-maximal and
                 # special data; the evidence, not the warning, decides
                 warnings.simplefilter("ignore", RuntimeWarning)
+                # hypothesis prices the repr of a failing case's arrays; the witness file,
+                # not that repr, is what we keep
+                warnings.filterwarnings("ignore", message="Generating overly large repr")
                 test()
         except BudgetExhausted:
             if tally.failure is None:

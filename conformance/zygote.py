@@ -18,7 +18,7 @@ import traceback
 
 import numpy as np
 
-from .arena import Arena, pack, unpack
+from .arena import Arena, copy_keeping_strides, pack, unpack
 
 __all__ = ["serve", "main"]
 
@@ -50,7 +50,7 @@ def serve(conn, adapter, memory_limit: int = 0):
                     arena.close()
                 arena = arenas[msg["arena"]] = Arena.attach(msg["arena"], msg["arena_size"])
             shared = unpack(arena, msg["arrays"], copy=False)    # the caller's bytes, untouched
-            args = [a.copy() if isinstance(a, np.ndarray) else a for a in shared]
+            args = [copy_keeping_strides(a) if isinstance(a, np.ndarray) else a for a in shared]
             try:
                 out = methods[msg["op"]](*args, **msg["kwargs"])
             except MemoryError as exc:
@@ -96,7 +96,8 @@ def _alias(item, args, last_outputs):
 def _same_bytes(a: np.ndarray, b) -> bool:
     if not isinstance(b, np.ndarray) or a.shape != b.shape or a.dtype != b.dtype:
         return False
-    a1, b1 = a.reshape(-1).view(np.uint8), np.ascontiguousarray(b).reshape(-1).view(np.uint8)
+    a1 = np.ascontiguousarray(a).reshape(-1).view(np.uint8)
+    b1 = np.ascontiguousarray(b).reshape(-1).view(np.uint8)
     if a1.size % 8 == 0:
         a1, b1 = a1.view(np.uint64), b1.view(np.uint64)
     return bool(np.array_equal(a1, b1))
