@@ -83,19 +83,14 @@ def _isolation_options(p):
 
 
 def _extend_run(r):
-    """Hook for options added by other modules (isolation, sharding)."""
-    try:
-        from . import cli_outputs
-    except ImportError:
-        return
+    """Options of ``run`` that live with the outputs (sharding)."""
+    from . import cli_outputs
     cli_outputs.extend_run(r)
 
 
 def _extend_sub(sub):
-    try:
-        from . import cli_outputs
-    except ImportError:
-        return
+    """The output commands: diff, merge, generate."""
+    from . import cli_outputs
     cli_outputs.extend_sub(sub)
 
 
@@ -172,11 +167,8 @@ def _all_passed(doc) -> bool:
 
 
 def _write_views(doc, report_dir):
-    """Human and CI views beside report.json, where their writers are installed."""
-    try:
-        from .views import write_views
-    except ImportError:
-        return
+    """Human and CI views beside report.json: report.html, summary.md, junit.xml."""
+    from .views import write_views
     write_views(doc, report_dir)
 
 

@@ -1,0 +1,83 @@
+"""The views of a report: ``report.html``, ``summary.md`` and ``junit.xml``.
+
+Each view only consumes the report document (the dict that ``report.json`` holds);
+none of them runs an invariant or loads an adapter. :func:`write_views` writes all
+three beside ``report.json``; the helpers here are what the views share (verdict
+labels, how a share of the bound is printed, which results count as failures).
+"""
+from __future__ import annotations
+
+import os
+
+__all__ = ["write_views", "VIEWS", "FAILING", "headline", "label", "share_text", "is_failure",
+           "write_text"]
+
+#: verdicts that mean the adapter got something wrong on a case it claims
+FAILING = ("fail", "error", "crash", "timeout")
+
+#: file name -> module that renders it (each has ``render(doc, report_dir) -> str``)
+VIEWS = {"report.html": "html", "summary.md": "markdown", "junit.xml": "junit"}
+
+_LABEL = {"pass": "pass", "fail": "fail", "error": "error", "crash": "crash",
+          "timeout": "timeout", "not-applicable": "not applicable", "unavailable": "unavailable"}
+
+
+def is_failure(r: dict) -> bool:
+    """A failing result that decides conformance (informational failures do not)."""
+    return r["verdict"] in FAILING and not r["informational"]
+
+
+def label(r: dict) -> str:
+    """The verdict of one invariant result for people."""
+    text = _LABEL.get(r["verdict"], r["verdict"])
+    if r["verdict"] in FAILING and r["informational"]:
+        text += " (information only)"
+    return text
+
+
+def headline(doc: dict) -> str:
+    """CONFORMANT, NOT CONFORMANT, or PARTIAL (an interrupted run or one shard)."""
+    if doc["status"] != "complete":
+        if any(is_failure(r) for r in doc["invariants"]):
+            return "NOT CONFORMANT"
+        return "PARTIAL"
+    return "CONFORMANT" if doc["conformant"] else "NOT CONFORMANT"
+
+
+def share_text(v) -> str:
+    """A share of the bound (error/bound) as people read it."""
+    if v is None:
+        return "-"
+    if v == "inf" or float(v) >= 1e300:      # the runner stores inf as 1e300 in per-example lists
+        return "inf"
+    v = float(v)
+    if v == 0:
+        return "0"
+    if v >= 1e4:
+        return f"{v:.2e}"
+    return f"{v:.3g}"
+
+
+def write_text(path: str, text: str) -> str:
+    """Write ``text`` to ``path`` atomically (a reader never sees half a file)."""
+    tmp = path + ".tmp"
+    with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+        fh.write(text)
+    os.replace(tmp, path)
+    return path
+
+
+def write_views(doc: dict, report_dir: str, names=None) -> dict:
+    """Write the views of ``doc`` into ``report_dir``; returns {file name: path}.
+
+    ``names`` restricts the files written (default: all of :data:`VIEWS`).
+    """
+    import importlib
+    os.makedirs(report_dir, exist_ok=True)
+    out = {}
+    for name, module in VIEWS.items():
+        if names is not None and name not in names:
+            continue
+        render = importlib.import_module(f"{__package__}.{module}").render
+        out[name] = write_text(os.path.join(report_dir, name), render(doc, report_dir))
+    return out

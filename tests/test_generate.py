@@ -1,0 +1,149 @@
+"""Generated pytest suites agree with `convwitness run` for the same seed.
+
+Each suite is written by `convwitness generate`, run by pytest in a subprocess
+(plain and with pytest-xdist's `-n 2`), and its per-test outcomes, read from
+pytest's own JUnit XML, are compared with the verdicts of `run` for the same
+adapter, invariants, profile and seed.
+"""
+from __future__ import annotations
+
+import io
+import os
+import subprocess
+import sys
+import xml.etree.ElementTree as ET
+
+import pytest
+
+from convwitness.cli import parse_args, run
+from convwitness.report import load_report
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+DEMO = os.path.join(ROOT, "reports", "_demo", "kestrel_port.py")
+CORRECT_ONLY = ("forward.reference,forward.groups,forward.stride,backward.grad_input,"
+                "backward.grad_weight,transposed.reference,inputs.untouched")
+BUGGY_ONLY = "forward.contract,forward.reference,forward.bias_shift,forward.padding,forward.special"
+
+
+def cli(*argv):
+    out, err = io.StringIO(), io.StringIO()
+    rc = run(parse_args(list(argv)), out, err)
+    return rc, out.getvalue(), err.getvalue()
+
+
+def generate(tmp_path, adapter, only, seed=0):
+    path = tmp_path / "tests" / "test_conv_conformance.py"
+    rc, out, err = cli("generate", "--adapter", adapter, "-o", str(path), "--only", only,
+                       "--seed", str(seed))
+    assert rc == 0, err
+    return path
+
+
+def pytest_outcomes(path, *extra):
+    """{invariant id: passed | failed | xfailed | xpassed | skipped}, and the failure texts."""
+    xml = path.parent / f"junit{len(extra)}.xml"
+    res = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider",
+                          f"--junitxml={xml}", "-o", "junit_family=xunit2", *extra, str(path)],
+                         capture_output=True, text=True, cwd=str(path.parent.parent), timeout=300)
+    outcomes, texts = {}, {}
+    for case in ET.parse(xml).getroot().iter("testcase"):
+        name = case.get("name").removeprefix("test_")
+        if case.find("failure") is not None:
+            outcomes[name], texts[name] = "failed", case.find("failure").text or ""
+        elif case.find("error") is not None:
+            outcomes[name], texts[name] = "error", case.find("error").text or ""
+        elif case.find("skipped") is not None:
+            s = case.find("skipped")
+            outcomes[name] = "xfailed" if s.get("type") == "pytest.xfail" else "skipped"
+        else:
+            outcomes[name] = "passed"
+    return res, outcomes, texts
+
+
+def run_report(tmp_path, adapter, only, seed=0):
+    folder = tmp_path / "run"
+    cli("run", "--adapter", adapter, "--only", only, "--seed", str(seed), "--report", str(folder),
+        "--quiet", "--isolation", "none")
+    return load_report(str(folder / "report.json"))
+
+
+def _key(inv_id):
+    return "".join(c if c.isalnum() else "_" for c in inv_id)
+
+
+def expected_outcomes(doc):
+    """What pytest should say for each verdict of `run` (information-only failures are xfail)."""
+    out = {}
+    for r in doc["invariants"]:
+        if r["verdict"] in ("not-applicable", "unavailable"):
+            continue
+        if r["informational"]:
+            out[_key(r["id"])] = "xfailed" if r["verdict"] != "pass" else "passed"
+        else:
+            out[_key(r["id"])] = {"pass": "passed", "fail": "failed"}.get(r["verdict"], "error")
+    return out
+
+
+def test_generated_module_is_readable_and_self_contained(tmp_path):
+    path = generate(tmp_path, "reference", "forward.reference,backward.grad_input")
+    text = path.read_text()
+    assert "from convwitness.generate import Suite" in text
+    assert "@given(suite.examples('forward.reference'))" in text
+    assert "def test_forward_reference(cases):" in text and "def test_backward_grad_input(cases):" in text
+    imports = {ln.split()[1] for ln in text.splitlines() if ln.startswith(("import ", "from "))}
+    assert imports <= {"pytest", "hypothesis", "convwitness.generate"}
+
+
+def test_reference_suite_passes_under_xdist_like_run(tmp_path):
+    doc = run_report(tmp_path, "reference", CORRECT_ONLY)
+    path = generate(tmp_path, "reference", CORRECT_ONLY)
+    res, outcomes, _ = pytest_outcomes(path, "-n", "2")
+    assert res.returncode == 0, res.stdout[-3000:]
+    assert outcomes == expected_outcomes(doc) and set(outcomes.values()) == {"passed"}
+
+
+def test_torch_suite_passes_under_xdist_like_run(tmp_path):
+    from convwitness import load_adapter
+    from convwitness.errors import AdapterUnavailable
+    try:
+        load_adapter("torch")
+    except AdapterUnavailable as exc:
+        pytest.skip(f"torch adapter unavailable: {exc}")
+    doc = run_report(tmp_path, "torch", CORRECT_ONLY)
+    path = generate(tmp_path, "torch", CORRECT_ONLY)
+    res, outcomes, _ = pytest_outcomes(path, "-n", "2")
+    assert res.returncode == 0, res.stdout[-3000:]
+    assert outcomes == expected_outcomes(doc) and set(outcomes.values()) == {"passed"}
+
+
+@pytest.mark.parametrize("workers", [(), ("-n", "2")], ids=["plain", "xdist"])
+def test_planted_bug_suite_fails_where_run_fails_with_the_same_anatomy(tmp_path, workers):
+    adapter = f"{DEMO}:KestrelPort"
+    doc = run_report(tmp_path, adapter, BUGGY_ONLY)
+    path = generate(tmp_path, adapter, BUGGY_ONLY)
+    res, outcomes, texts = pytest_outcomes(path, *workers)
+    assert res.returncode == 1
+    assert outcomes == expected_outcomes(doc)
+    failing = [r for r in doc["invariants"] if r["verdict"] == "fail" and not r["informational"]]
+    assert {_key(r["id"]) for r in failing} == {k for k, v in outcomes.items() if v == "failed"}
+    assert {"forward_reference", "forward_bias_shift"} <= {_key(r["id"]) for r in failing}
+    for r in failing:
+        # pytest prefixes the exception's lines with "E   "; the anatomy must be the report's
+        shown = "\n".join(ln[1:].strip() for ln in texts[_key(r["id"])].splitlines() if ln.startswith("E "))
+        for line in r["message"].splitlines():
+            assert line.strip() in shown, (r["id"], line)
+
+
+def test_generated_suite_with_another_seed_still_agrees(tmp_path):
+    adapter = f"{DEMO}:KestrelPort"
+    doc = run_report(tmp_path, adapter, "forward.groups,forward.contract", seed=7)
+    path = generate(tmp_path, adapter, "forward.groups,forward.contract", seed=7)
+    assert "seed=7" in path.read_text()
+    _, outcomes, _ = pytest_outcomes(path)
+    assert outcomes == expected_outcomes(doc)
+
+
+def test_generate_rejects_an_empty_selection(tmp_path):
+    rc, _, err = cli("generate", "--adapter", "reference", "-o", str(tmp_path / "t.py"),
+                     "--only", "no.such.invariant")
+    assert rc == 2 and "matches no invariant" in err and len(err.strip().splitlines()) == 1
