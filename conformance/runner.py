@@ -159,7 +159,8 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
             if not ev.ok:
                 tally.failure = (case, ev)
                 raise InvariantFailure(ev)
-        hypothesis.target(worst, label="share of bound")
+        if inv.steer:
+            hypothesis.target(worst, label="share of bound")
 
     test = given(strategy)(body)
     test = hypothesis_settings(profile, database_dir, shrink=shrink)(test)

@@ -40,6 +40,10 @@ class Invariant:
     informational_unless: str | None = None
     adjust: Callable | None = field(default=None, repr=False, compare=False)
     cases: Callable | None = field(default=None, repr=False, compare=False)
+    #: steer hypothesis toward the largest share of the bound (``hypothesis.target``):
+    #: worth its cost where the share grows smoothly toward a failure (agreement with
+    #: the reference); a structural property fails at once or not at all
+    steer: bool = False
 
     @property
     def property(self) -> str:
@@ -77,7 +81,8 @@ class Invariant:
 
 
 def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | None = None,
-              requires=None, informational_unless: str | None = None, adjust=None, cases=None):
+              requires=None, informational_unless: str | None = None, adjust=None, cases=None,
+              steer: bool = False):
     """Register ``func(adapter, case, context) -> Evidence`` as an invariant."""
     def deco(func):
         if id in REGISTRY:
@@ -85,7 +90,7 @@ def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | No
         REGISTRY[id] = Invariant(id=id, statement=statement, passes=frozenset(passes),
                                  needs=needs or Needs(), func=func, requires=requires,
                                  informational_unless=informational_unless, adjust=adjust,
-                                 cases=cases)
+                                 cases=cases, steer=steer)
         return func
     return deco
 

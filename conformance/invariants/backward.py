@@ -47,7 +47,7 @@ def _reference_check(adapter, case, index: int, pass_: str):
                  criterion=f"backward.{pass_}: |{name} - {name}_ref| <= bound")
 
 
-@invariant("backward.grad_input", passes=("backward",),
+@invariant("backward.grad_input", steer=True, passes=("backward",),
            statement="the input gradient agrees with the float64 reference within the derived bound")
 def grad_input_reference(adapter, case, ctx):
     """|GI(g) - GI_ref(g)| <= c |g| *^T |w| + u_out |GI_ref| elementwise, with c from the
@@ -55,7 +55,7 @@ def grad_input_reference(adapter, case, ctx):
     return _reference_check(adapter, case, 0, "grad_input")
 
 
-@invariant("backward.grad_weight", passes=("backward",),
+@invariant("backward.grad_weight", steer=True, passes=("backward",),
            statement="the weight gradient agrees with the float64 reference within the derived bound")
 def grad_weight_reference(adapter, case, ctx):
     """|GW(g) - GW_ref(g)| <= c (|x| * |g|) + u_out |GW_ref| elementwise, with
@@ -63,7 +63,7 @@ def grad_weight_reference(adapter, case, ctx):
     return _reference_check(adapter, case, 1, "grad_weight")
 
 
-@invariant("backward.grad_bias", passes=("backward",), needs=Needs(bias=True), requires=_needs_bias,
+@invariant("backward.grad_bias", steer=True, passes=("backward",), needs=Needs(bias=True), requires=_needs_bias,
            statement="the bias gradient is the sum of the upstream gradient over batch and space")
 def grad_bias_reference(adapter, case, ctx):
     """GB[o] = sum_{n, h} g[n, o, h] within gamma_{n-1}(u_acc) sum |g| + u_out |GB_ref|,

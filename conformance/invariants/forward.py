@@ -53,7 +53,7 @@ def output_contract(adapter, case, ctx):
                     checked=y1.size)
 
 
-@invariant("forward.reference", passes=("forward",),
+@invariant("forward.reference", steer=True, passes=("forward",),
            statement="y agrees with the float64 reference within the derived rounding-error bound")
 def forward_reference(adapter, case, ctx):
     """|y - y_ref| <= c * (|x| * |w| + |b|) + u_out |y_ref| elementwise, with c from the

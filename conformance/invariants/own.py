@@ -72,7 +72,7 @@ def _scalar(actual, expected, tol, *, what, criterion, explanation):
                    criterion=criterion, explanation=explanation)
 
 
-@invariant("backward.adjoint", passes=("forward", "backward"), needs=Needs(kinds=SCALAR_KINDS),
+@invariant("backward.adjoint", steer=True, passes=("forward", "backward"), needs=Needs(kinds=SCALAR_KINDS),
            statement="dot-product test: <f(x) - b, g> = <x, grad_x> = <w, grad_w> for the "
                      "adapter's own forward and backward")
 def adjoint(adapter, case, ctx):

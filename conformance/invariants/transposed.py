@@ -62,7 +62,7 @@ def contract(adapter, case, ctx):
         f"transposed contract: shape {y1.shape} (Relationship 14), dtype {y1.dtype}, fresh, finite"))
 
 
-@invariant("transposed.reference", passes=("transposed",), needs=Needs(transposed=True),
+@invariant("transposed.reference", steer=True, passes=("transposed",), needs=Needs(transposed=True),
            statement="the transposed convolution agrees with the float64 reference within the "
                      "derived bound")
 def reference(adapter, case, ctx):
