@@ -150,9 +150,12 @@ def load_report(path: str) -> dict:
         raise ReportError(f"report {path!r} does not exist; `convwitness run --report DIR` writes "
                           "DIR/report.json") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise ReportError(f"report {path!r} is not valid JSON ({exc})") from None
+        raise ReportError(f"report {path!r} is not valid JSON ({exc}); expected the report.json "
+                          "that `convwitness run --report DIR` writes (a truncated file can be "
+                          "rebuilt from its journal: `convwitness rebuild DIR`)") from None
     if not isinstance(doc, dict) or doc.get("format") != REPORT_FORMAT:
         got = doc.get("format") if isinstance(doc, dict) else type(doc).__name__
-        raise ReportError(f"{path!r}: expected a report of format {REPORT_FORMAT!r}, got {got!r}")
+        raise ReportError(f"{path!r}: expected a report of format {REPORT_FORMAT!r}, got {got!r}; "
+                          "give the report.json that `convwitness run --report DIR` writes")
     validate_report(doc)
     return doc
