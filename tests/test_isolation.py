@@ -135,3 +135,34 @@ def test_isolation_none_runs_in_process(tmp_path):
                     "--only", "forward.reference", "--quiet"], tmp_path)
     assert proc.returncode == 0, proc.stderr
     assert load_report(str(report / "report.json"))["conformant"] is True
+
+
+def test_views_cross_the_worker_boundary_with_their_strides():
+    # numpy's documented ndarray.strides/ndarray(buffer=..., strides=...) semantics: a
+    # step-slice view is not C-contiguous; the worker must see such a view, not a packed
+    # copy, or a defect that reads views as packed (BUG-CLASSES C11) would hide there
+    import numpy as np
+    from convwitness.arena import Arena, copy_keeping_strides, pack, unpack
+    base = np.arange(2 * 3 * 8, dtype=np.float32).reshape(2, 3, 8)
+    view = base[:, 1:, ::2]
+    arena = Arena.create(size=1 << 16)
+    try:
+        (back,) = unpack(arena, pack(arena, [view]), copy=True)
+    finally:
+        arena.close()
+    assert not back.flags.c_contiguous and back.strides == view.strides
+    assert np.array_equal(back, view)
+    kept = copy_keeping_strides(view)
+    assert kept.strides == view.strides and np.array_equal(kept, view)
+    assert not np.shares_memory(kept, base)
+
+
+@pytest.mark.parametrize("adapter, code", [
+    ("convwitness.adapters.zoo_state:ViewReadAsPacked", 1), ("reference", 0)])
+def test_views_invariant_under_process_isolation(tmp_path, adapter, code):
+    # the planted C11 defect is caught through the worker process, the reference is not flagged
+    proc, _ = _run(["run", "--adapter", adapter, "--only", "inputs.views", "--isolation", "process",
+                    "--quiet", "--report", str(tmp_path / "r")], cwd=tmp_path)
+    assert proc.returncode == code, proc.stdout + proc.stderr
+    doc = load_report(str(tmp_path / "r" / "report.json"))
+    assert doc["invariants"][0]["verdict"] == ("fail" if code else "pass")
