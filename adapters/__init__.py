@@ -16,7 +16,7 @@ BUILTINS: dict[str, str] = {
     "onnxruntime": "convwitness.adapters.onnxruntime_node:OnnxRuntimeAdapter",
     "scipy": "convwitness.adapters.scipy_signal:ScipyAdapter",
     "scipy-fft": "convwitness.adapters.scipy_fft:ScipyFftAdapter",
-    "tessera-npu": "convwitness.adapters.tessera:TesseraNPU",
+    "oxtervane-npu": "convwitness.adapters.oxtervane:OxtervaneNPU",
     "winograd-f2": "convwitness.adapters.winograd:WinogradF2",
     "winograd-f4": "convwitness.adapters.winograd:WinogradF4",
 }

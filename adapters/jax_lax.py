@@ -42,8 +42,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
 from convwitness.errors import AdapterUnavailable
 
 __all__ = ["JaxAdapter"]
@@ -212,7 +212,7 @@ def jax_bf16():
     XLA computes bfloat16 convolutions in float32 (products exact, float32 sums) and
     rounds the convolution to bfloat16; the bias is then added in bfloat16, a second
     rounding (``ErrorModel.bias_add``)."""
-    from convwitness.formats import numpy_dtype
+    from convwitness.geometry.formats import numpy_dtype
     numpy_dtype("bfloat16")                       # needs ml_dtypes
     model = ErrorModel(product="float32", accumulate="float32", bias_add="bfloat16",
                        note="XLA CPU: float32 compute, rounded to bfloat16, then + bias in bfloat16")

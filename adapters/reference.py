@@ -1,6 +1,6 @@
 """The float64 reference behind the call signature: a known-good control.
 
-It computes every pass in float64 with :mod:`convwitness.reference` and rounds the
+It computes every pass in float64 with :mod:`convwitness.numerics.reference` and rounds the
 result once to the dtype of the inputs, so its error model is "accumulate in
 float64, round once to the output format".
 """
@@ -8,11 +8,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness import reference as ref
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
-from convwitness.formats import STORAGE_FORMATS, available, dtype_name
-from convwitness.spec import ConvSpec
+from convwitness.numerics import reference as ref
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
+from convwitness.geometry.formats import STORAGE_FORMATS, available, dtype_name
+from convwitness.geometry.spec import ConvSpec
 
 
 def _spec(x, w, b, stride, padding, dilation, groups, layout, transposed=False, output_padding=0):

@@ -11,7 +11,7 @@ large ones.
 """
 from __future__ import annotations
 
-from convwitness.bounds import ErrorModel
+from convwitness.numerics.bounds import ErrorModel
 
 from .scipy_signal import ScipyAdapter
 

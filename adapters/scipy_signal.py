@@ -22,8 +22,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
 from convwitness.errors import AdapterUnavailable
 
 __all__ = ["ScipyAdapter"]

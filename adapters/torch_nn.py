@@ -49,8 +49,8 @@ from functools import lru_cache
 
 import numpy as np
 
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
 from convwitness.errors import AdapterUnavailable
 
 __all__ = ["TorchAdapter", "torch_bf16", "torch_channels_last"]
@@ -112,7 +112,7 @@ class TorchAdapter:
         # numpy dtype name -> torch dtype; bfloat16 travels as its bit pattern
         self._TORCH_DTYPES = {"float32": torch.float32, "float64": torch.float64,
                               "float16": torch.float16}
-        from convwitness.formats import available, numpy_dtype
+        from convwitness.geometry.formats import available, numpy_dtype
         self._bf16 = numpy_dtype("bfloat16") if available("bfloat16") else None
         if self._bf16 is not None:
             self._TORCH_DTYPES["bfloat16"] = torch.bfloat16

@@ -11,11 +11,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 from convwitness.adapters.reference import _spec
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
-from convwitness.fastbounds import winograd_conv, winograd_eligible
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
+from convwitness.numerics.winograd import winograd_conv, winograd_eligible
 
 __all__ = ["WinogradAdapter", "WinogradF2", "WinogradF4"]
 

@@ -1,7 +1,7 @@
 """The planted-bug zoo: adapters with one realistic defect each, and correct controls.
 
 ``ZOO`` maps a name to an adapter class whose passes call the float64 reference
-(:mod:`convwitness.reference`) with one defect taken from a class of
+(:mod:`convwitness.numerics.reference`) with one defect taken from a class of
 shared/BUG-CLASSES.md (its ``bug_class`` and docstring say which and what real code
 does wrong). Every zoo adapter declares the capabilities a correct implementation of
 it would claim, so a suite that certifies it has missed a bug.
@@ -10,7 +10,7 @@ it would claim, so a suite that certifies it has missed a bug.
 a plain numpy implementation that accumulates in the input dtype tap by tap.
 
 ``convwitness selftest`` runs the whole suite on both and prints which invariants catch
-which bug (:mod:`convwitness.selftest`).
+which bug (:mod:`convwitness.run.selftest`).
 """
 from __future__ import annotations
 

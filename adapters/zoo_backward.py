@@ -1,7 +1,7 @@
 """Planted backward-pass bugs of the zoo: input, weight and bias gradients.
 
 Each class keeps the reference forward and computes the gradients of
-:func:`convwitness.reference.backward` with one defect, described in its docstring
+:func:`convwitness.numerics.reference.backward` with one defect, described in its docstring
 with the bug class of shared/BUG-CLASSES.md it stands for. Hooks see channels-first
 arrays and a channels-first spec (see :mod:`.zoo_base`).
 """
@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 
 from .zoo_base import ZooAdapter, fit
 

@@ -1,7 +1,7 @@
 """Shared machinery of the planted-bug zoo (see :mod:`convwitness.adapters.zoo`).
 
 A zoo adapter is an object-form adapter whose passes call the float64 reference
-(:mod:`convwitness.reference`) with one realistic defect. :class:`ZooAdapter` does the
+(:mod:`convwitness.numerics.reference`) with one realistic defect. :class:`ZooAdapter` does the
 plumbing: it builds the :class:`~convwitness.ConvSpec` from the call's arrays and
 keywords, moves channels-last arrays to channels first and back, and rounds results
 once to the input dtype. A bug overrides one hook (``fwd``, ``bwd``, ``tr``) that sees
@@ -12,11 +12,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness import reference as ref
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
-from convwitness.formats import dtype_name
-from convwitness.spec import ConvSpec
+from convwitness.numerics import reference as ref
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
+from convwitness.geometry.formats import dtype_name
+from convwitness.geometry.spec import ConvSpec
 
 __all__ = ["ZooAdapter", "make_spec", "to_cf", "from_cf", "fit", "explicit_pad", "ZOO_VERSION"]
 

@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness import reference as ref
-from convwitness.bounds import ErrorModel
+from convwitness.numerics import reference as ref
+from convwitness.numerics.bounds import ErrorModel
 
 from .zoo_base import ZooAdapter, fit
 from .zoo_numpy import forward_taps

@@ -16,9 +16,9 @@ import itertools
 
 import numpy as np
 
-from convwitness.bounds import ErrorModel
-from convwitness.capabilities import Capabilities
-from convwitness.spec import ConvSpec
+from convwitness.numerics.bounds import ErrorModel
+from convwitness.geometry.capabilities import Capabilities
+from convwitness.geometry.spec import ConvSpec
 
 from .zoo_base import BOTH_LAYOUTS, ALL_PADDING, ZOO_VERSION, explicit_pad, from_cf, make_spec, to_cf
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 from convwitness.errors import SpecError
 
 from .zoo_base import ZooAdapter, fit, from_cf, make_spec, to_cf

@@ -4,15 +4,15 @@
     python scripts/regen_reports.py [--profile quick] [--seed 0] [--no-screenshot]
 
 * ``reports/<adapter>/`` for each built-in adapter whose library is installed
-  (reference, torch, jax, onnxruntime, scipy) and for the Tessera TD-16 demo port
-  (``tessera-npu``, the README's default) and its planted tile-remainder sibling
-  (``tessera-npu-tailbug``): report.json, report.html, summary.md,
+  (reference, torch, jax, onnxruntime, scipy) and for the Oxtervane OXT-16 demo port
+  (``oxtervane-npu``, the README's default) and its planted tile-remainder sibling
+  (``oxtervane-npu-tailbug``): report.json, report.html, summary.md,
   junit.xml and any witnesses, written by ``convwitness run``. An adapter whose library
   is missing keeps its previous folder (the script says so).
-* ``reports/_demo/kestrel-0.3.0/`` and ``reports/_demo/kestrel-0.3.1/``: the invented
-  Kestrel KX-9 port (``reports/_demo/kestrel_port.py``) before and after its planted
+* ``reports/_demo/brindlemoss-0.3.0/`` and ``reports/_demo/brindlemoss-0.3.1/``: the invented
+  Brindlemoss BRM-9 port (``reports/_demo/brindlemoss_port.py``) before and after its planted
   grouped-bias bug, plus ``reports/_demo/diff-0.3.0-to-0.3.1.md`` (``convwitness diff``)
-  and ``reports/_demo/kestrel-0.3.1/screenshot.png``, the failing report rendered by
+  and ``reports/_demo/brindlemoss-0.3.1/screenshot.png``, the failing report rendered by
   headless chromium.
 * ``reports/README.md``: an index of the above.
 
@@ -31,15 +31,15 @@ import tempfile
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 REPORTS = os.path.join(ROOT, "reports")
-BUILTINS = ("reference", "torch", "jax", "onnxruntime", "scipy", "tessera-npu",
-            "convwitness.adapters.tessera:TesseraNPUTailBug")
-DEMO = "reports/_demo/kestrel_port.py"
-DEMOS = (("kestrel-0.3.0", f"{DEMO}:KestrelPort030"), ("kestrel-0.3.1", f"{DEMO}:KestrelPort"))
+BUILTINS = ("reference", "torch", "jax", "onnxruntime", "scipy", "oxtervane-npu",
+            "convwitness.adapters.oxtervane:OxtervaneNPUTailBug")
+DEMO = "reports/_demo/brindlemoss_port.py"
+DEMOS = (("brindlemoss-0.3.0", f"{DEMO}:BrindlemossPort030"), ("brindlemoss-0.3.1", f"{DEMO}:BrindlemossPort"))
 SCRATCH = (".hypothesis", "journal.jsonl")
 
 
 def convwitness(*args) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "convwitness.cli", *args], cwd=ROOT,
+    return subprocess.run([sys.executable, "-m", "convwitness.cli.main", *args], cwd=ROOT,
                           capture_output=True, text=True)
 
 
@@ -124,9 +124,9 @@ def screenshot(html: str, png: str) -> bool:
 def index(rows: list[tuple[str, dict]]) -> str:
     lines = ["# Sample reports", "",
              "Written by `python scripts/regen_reports.py` (profile quick, seed 0); never edited by hand.",
-             "`tessera-npu` is the demo port (a CPU emulation of the invented Tessera Devices TD-16",
-             "NPU kernel); `tessera-npu-tailbug` is its sibling with a planted tile-remainder bug.",
-             "The `_demo` port is another invented accelerator (Kestrel KX-9) whose release 0.3.1",
+             "`oxtervane-npu` is the demo port (a CPU emulation of the invented Oxtervane Devices OXT-16",
+             "NPU kernel); `oxtervane-npu-tailbug` is its sibling with a planted tile-remainder bug.",
+             "The `_demo` port is another invented accelerator (Brindlemoss BRM-9) whose release 0.3.1",
              "has a planted grouped-bias bug: the nightly-regression example for `convwitness diff`.", "",
              "| report | adapter | verdict | invariants | views |", "|---|---|---|---|---|"]
     for rel, doc in rows:
@@ -137,7 +137,7 @@ def index(rows: list[tuple[str, dict]]) -> str:
                      f"[html]({where}/report.html) · [md]({where}/summary.md) · [junit]({where}/junit.xml) |")
     lines += ["", "Regression diff of the demo releases: [_demo/diff-0.3.0-to-0.3.1.md](_demo/diff-0.3.0-to-0.3.1.md);",
               "screenshot of the failing report in headless chromium: "
-              "[_demo/kestrel-0.3.1/screenshot.png](_demo/kestrel-0.3.1/screenshot.png).", ""]
+              "[_demo/brindlemoss-0.3.1/screenshot.png](_demo/brindlemoss-0.3.1/screenshot.png).", ""]
     return "\n".join(lines)
 
 

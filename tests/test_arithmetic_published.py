@@ -18,7 +18,7 @@ import pytest
 
 import convwitness
 from convwitness import ConvSpec, gamma
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 
 U64 = 2.0 ** -53
 

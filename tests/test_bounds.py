@@ -21,7 +21,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from convwitness import ConvSpec, ErrorModel, FormatError, derive, gamma
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 
 U32, U16, U64 = 2.0 ** -24, 2.0 ** -11, 2.0 ** -53
 

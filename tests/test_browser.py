@@ -18,12 +18,12 @@ from html.parser import HTMLParser
 
 import pytest
 
-from convwitness.cli import parse_args, run
+from convwitness.cli.main import parse_args, run
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-DEMO = os.path.join(ROOT, "reports", "_demo", "kestrel_port.py")
+DEMO = os.path.join(ROOT, "reports", "_demo", "brindlemoss_port.py")
 EVIL = "<script>document.title='pwned'</script>"
-ONLY = "forward.contract,forward.reference,forward.groups,forward.layout"   # layout: n/a
+ONLY = "forward.contract,forward.reference,forward.group_split,forward.layout_agreement"   # layout: n/a
 
 
 def _chromium():
@@ -88,15 +88,15 @@ def failing_report(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("browser")
     port = tmp / "evil_port.py"
     port.write_text("import importlib.util\n"
-                    f"spec = importlib.util.spec_from_file_location('kestrel_demo', {DEMO!r})\n"
+                    f"spec = importlib.util.spec_from_file_location('brindlemoss_demo', {DEMO!r})\n"
                     "mod = importlib.util.module_from_spec(spec)\nspec.loader.exec_module(mod)\n\n\n"
-                    "class EvilPort(mod.KestrelPort):\n"
+                    "class EvilPort(mod.BrindlemossPort):\n"
                     f"    name = {EVIL!r}\n")
     folder = str(tmp / "report")
     rc = run(parse_args(["run", "--adapter", f"{port}:EvilPort", "--only", ONLY, "--report", folder,
                          "--quiet", "--isolation", "none"]), io.StringIO(), io.StringIO())
     assert rc == 1
-    from convwitness.report import load_report
+    from convwitness.report.document import load_report
     return folder, load_report(os.path.join(folder, "report.json"))
 
 

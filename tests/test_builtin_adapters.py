@@ -1,8 +1,8 @@
 """The built-in adapters against the float64 reference, and their declared behaviour.
 
-Each adapter, loaded by name, must agree with convwitness.reference on a handful of
+Each adapter, loaded by name, must agree with convwitness.numerics.reference on a handful of
 geometries in every dtype, layout and pass it claims, within the bound derived from
-its own declared error model (convwitness.bounds.derive; Higham 2002, §3.1,
+its own declared error model (convwitness.numerics.bounds.derive; Higham 2002, §3.1,
 gamma_n). The libraries behind them (torch, jax, onnxruntime, scipy) are the outside
 sources; the reference itself is checked against them in
 test_reference_vs_libraries.py.
@@ -20,9 +20,9 @@ import pytest
 
 import convwitness
 from convwitness import AdapterUnavailable, ConvSpec
-from convwitness import reference as ref
-from convwitness.bounds import derive
-from convwitness.formats import numpy_dtype
+from convwitness.numerics import reference as ref
+from convwitness.numerics.bounds import derive
+from convwitness.geometry.formats import numpy_dtype
 
 ADAPTERS = ["reference", "torch", "jax", "onnxruntime", "scipy"]
 

@@ -21,8 +21,8 @@ import numpy as np
 import pytest
 
 from convwitness import ConvSpec
-from convwitness.cli import parse_args, run
-from convwitness.loading import load_adapter
+from convwitness.cli.main import parse_args, run
+from convwitness.boundary.loading import load_adapter
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 SOURCE = os.path.join(HERE, "c_port", "convport.c")
@@ -166,21 +166,21 @@ def test_c_port_is_certified_by_the_full_quick_suite(ports, tmp_path):
     verdicts = {r["id"]: r["verdict"] for r in doc["invariants"]}
     assert doc["status"] == "complete"
     # only the layout invariant does not apply: the port claims channels_first alone
-    assert {k for k, v in verdicts.items() if v != "pass"} == {"forward.layout"}
-    assert verdicts["forward.layout"] == "not-applicable"
+    assert {k for k, v in verdicts.items() if v != "pass"} == {"forward.layout_agreement"}
+    assert verdicts["forward.layout_agreement"] == "not-applicable"
 
 
 def test_planted_strided_tail_bug_is_caught_and_replays(ports, tmp_path):
     report = tmp_path / "report"
     bug, good = f"exec:{ports['convport_tailbug']}", f"exec:{ports['convport']}"
     code, out, err = _cli(["run", "--adapter", bug, "--profile", "quick",
-                           "--only", "backward.*,transposed.*", "--report", str(report), "--quiet"])
+                           "--only", "backward.*,grad_input.*,grad_weight.*,grad_bias.*,transposed.*", "--report", str(report), "--quiet"])
     assert code == 1, out + err
     doc = json.loads((report / "report.json").read_text())
     verdicts = {r["id"]: r["verdict"] for r in doc["invariants"]}
-    assert verdicts["backward.grad_input"] == "fail"
-    assert verdicts["backward.grad_weight"] == "pass"      # only the input gradient is planted
-    witness = report / "witnesses" / "backward.grad_input.json"
+    assert verdicts["grad_input.reference"] == "fail"
+    assert verdicts["grad_weight.reference"] == "pass"      # only the input gradient is planted
+    witness = report / "witnesses" / "grad_input.reference.json"
     spec = ConvSpec.from_dict(json.loads(witness.read_text())["spec"])
     # C01's trigger: a stride >= 2 whose windows leave a remainder (BUG-CLASSES.md)
     assert any(s >= 2 and r != 0 for s, r in zip(spec.stride, spec.remainder)), spec.describe()
@@ -193,20 +193,20 @@ def test_a_crashing_and_chattering_port_gets_verdicts_and_the_run_goes_on(ports,
     # -DCONVPORT_FAULTS: forward with groups > 1 dies of SIGSEGV; backward with a batch
     # >= 2 prints a debug line on stdout. Each is a verdict of its own invariant; the
     # restarted program serves the next one, and the report validates.
-    from convwitness.report import validate_report
+    from convwitness.report.document import validate_report
     report = tmp_path / "report"
     code, out, err = _cli(["run", "--adapter", f"exec:{ports['convport_faults']}", "--only",
-                           "forward.groups,backward.grad_bias,transposed.reference",
+                           "forward.group_split,grad_bias.reference,transposed.reference",
                            "--report", str(report), "--quiet"])
     assert code == 1, out + err
     doc = json.loads((report / "report.json").read_text())
     validate_report(doc)
     res = {r["id"]: r for r in doc["invariants"]}
     assert doc["status"] == "complete"
-    assert res["forward.groups"]["verdict"] == "crash"
-    assert "killed by SIGSEGV (11)" in res["forward.groups"]["message"]
-    assert res["backward.grad_bias"]["verdict"] == "fail"
-    assert "expected magic b'CW/1' at byte 0 of message" in res["backward.grad_bias"]["message"]
-    assert "got b'debu'" in res["backward.grad_bias"]["message"]
+    assert res["forward.group_split"]["verdict"] == "crash"
+    assert "killed by SIGSEGV (11)" in res["forward.group_split"]["message"]
+    assert res["grad_bias.reference"]["verdict"] == "fail"
+    assert "expected magic b'CW/1' at byte 0 of message" in res["grad_bias.reference"]["message"]
+    assert "got b'debu'" in res["grad_bias.reference"]["message"]
     assert res["transposed.reference"]["verdict"] == "pass"
-    assert (report / "witnesses" / "forward.groups.json").exists()
+    assert (report / "witnesses" / "forward.group_split.json").exists()

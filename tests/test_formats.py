@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from convwitness import FormatError, unit_roundoff
-from convwitness.formats import (FORMATS, STORAGE_FORMATS, available, dtype_name, get_format,
+from convwitness.geometry.formats import (FORMATS, STORAGE_FORMATS, available, dtype_name, get_format,
                                  numpy_dtype, round_operand, to_format)
 
 # IEEE 754-2019 binary formats (table numbers from memory, checked against numpy.finfo)

@@ -15,14 +15,14 @@ import xml.etree.ElementTree as ET
 
 import pytest
 
-from convwitness.cli import parse_args, run
-from convwitness.report import load_report
+from convwitness.cli.main import parse_args, run
+from convwitness.report.document import load_report
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-DEMO = os.path.join(ROOT, "reports", "_demo", "kestrel_port.py")
-CORRECT_ONLY = ("forward.reference,forward.groups,forward.stride,backward.grad_input,"
-                "backward.grad_weight,transposed.reference,inputs.untouched")
-BUGGY_ONLY = "forward.contract,forward.reference,forward.bias_shift,forward.padding,forward.special"
+DEMO = os.path.join(ROOT, "reports", "_demo", "brindlemoss_port.py")
+CORRECT_ONLY = ("forward.reference,forward.group_split,forward.stride_subsampling,grad_input.reference,"
+                "grad_weight.reference,transposed.reference,call.inputs_untouched")
+BUGGY_ONLY = "forward.contract,forward.reference,forward.bias_shift,forward.explicit_padding,forward.special_values"
 
 
 def cli(*argv):
@@ -85,13 +85,13 @@ def expected_outcomes(doc):
 
 
 def test_generated_module_is_readable_and_self_contained(tmp_path):
-    path = generate(tmp_path, "reference", "forward.reference,backward.grad_input")
+    path = generate(tmp_path, "reference", "forward.reference,grad_input.reference")
     text = path.read_text()
-    assert "from convwitness.generate import Suite" in text
+    assert "from convwitness import Suite" in text
     assert "@given(suite.examples('forward.reference'))" in text
-    assert "def test_forward_reference(cases):" in text and "def test_backward_grad_input(cases):" in text
+    assert "def test_forward_reference(cases):" in text and "def test_grad_input_reference(cases):" in text
     imports = {ln.split()[1] for ln in text.splitlines() if ln.startswith(("import ", "from "))}
-    assert imports <= {"pytest", "hypothesis", "convwitness.generate"}
+    assert imports <= {"pytest", "hypothesis", "convwitness.run.generate"}
 
 
 def test_reference_suite_passes_under_xdist_like_run(tmp_path):
@@ -118,7 +118,7 @@ def test_torch_suite_passes_under_xdist_like_run(tmp_path):
 
 @pytest.mark.parametrize("workers", [(), ("-n", "2")], ids=["plain", "xdist"])
 def test_planted_bug_suite_fails_where_run_fails_with_the_same_anatomy(tmp_path, workers):
-    adapter = f"{DEMO}:KestrelPort"
+    adapter = f"{DEMO}:BrindlemossPort"
     doc = run_report(tmp_path, adapter, BUGGY_ONLY)
     path = generate(tmp_path, adapter, BUGGY_ONLY)
     res, outcomes, texts = pytest_outcomes(path, *workers)
@@ -135,9 +135,9 @@ def test_planted_bug_suite_fails_where_run_fails_with_the_same_anatomy(tmp_path,
 
 
 def test_generated_suite_with_another_seed_still_agrees(tmp_path):
-    adapter = f"{DEMO}:KestrelPort"
-    doc = run_report(tmp_path, adapter, "forward.groups,forward.contract", seed=7)
-    path = generate(tmp_path, adapter, "forward.groups,forward.contract", seed=7)
+    adapter = f"{DEMO}:BrindlemossPort"
+    doc = run_report(tmp_path, adapter, "forward.group_split,forward.contract", seed=7)
+    path = generate(tmp_path, adapter, "forward.group_split,forward.contract", seed=7)
     assert "seed=7" in path.read_text()
     _, outcomes, _ = pytest_outcomes(path)
     assert outcomes == expected_outcomes(doc)

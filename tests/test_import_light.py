@@ -24,8 +24,10 @@ print(json.dumps(sorted(m for m in sys.modules if m.split(".")[0] in heavy)))
 @pytest.mark.parametrize("imports", [
     "import convwitness",
     "import convwitness.adapters",
-    "import convwitness, convwitness.adapters\nfrom convwitness import reference, bounds, formats, "
-    "capabilities, contract, loading, spec",
+    "import convwitness, convwitness.adapters\nfrom convwitness.numerics import reference, bounds\n"
+    "from convwitness.geometry import formats, capabilities, spec\n"
+    "from convwitness.boundary import contract, loading",
+    "from convwitness.report import diff, outputs, html, markdown, junit",
 ])
 def test_import_pulls_in_no_optional_backend(imports):
     out = subprocess.run([sys.executable, "-c", PROBE.format(imports=imports, heavy=HEAVY)],
@@ -54,3 +56,12 @@ def test_probe_detects_a_heavy_import():
                          capture_output=True, text=True, timeout=60)
     assert out.returncode == 0, out.stderr
     assert "scipy" in json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def test_reading_and_comparing_reports_needs_no_hypothesis():
+    # comparing two reports (``convwitness diff``) classifies geometries with
+    # convwitness.cases.features, which lives apart from the hypothesis strategies
+    code = PROBE.format(imports="from convwitness.report import diff, document", heavy=("hypothesis",))
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout.strip().splitlines()[-1]) == []

@@ -9,7 +9,7 @@ implementations and catch planted bugs.
     shared/BUG-CLASSES.md describe, and declares the reference adapter's capabilities.
 
 The properties checked come from outside the project: the dot-product test of
-Claerbout (backward.adjoint); the weight gradient as a correlation of input and
+Claerbout (backward.adjoint_identity); the weight gradient as a correlation of input and
 upstream gradient and the input gradient as a transposed convolution (Goodfellow,
 Bengio & Courville, Deep Learning, §9.5); Relationship 14 of Dumoulin & Visin 2016,
 arXiv:1603.07285 (transposed output size) and their §4 (a transposed convolution is the
@@ -23,17 +23,17 @@ import numpy as np
 import pytest
 
 import convwitness
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 from convwitness.adapters.reference import ReferenceAdapter, _spec
 from convwitness.errors import SpecError
 from convwitness.invariants import get
-from convwitness.runner import run_invariant
+from convwitness.run.runner import run_invariant
 
 IDS = [
-    "backward.grad_input", "backward.grad_weight", "backward.grad_bias", "backward.zero_batch",
-    "backward.linearity", "backward.bias_independence", "backward.adjoint",
-    "backward.weight_correlation", "backward.input_transposed", "backward.finite_difference",
-    "transposed.contract", "transposed.reference", "transposed.matches_grad_input",
+    "grad_input.reference", "grad_weight.reference", "grad_bias.reference", "backward.zero_batch",
+    "backward.upstream_linearity", "backward.bias_independence", "backward.adjoint_identity",
+    "grad_weight.forward_correlation", "grad_input.forward_flipped_kernel", "backward.finite_differences",
+    "transposed.contract", "transposed.reference", "transposed.grad_input_identity",
 ]
 
 
@@ -241,27 +241,27 @@ class OutputPaddingAsInputPadding(_Planted):
 
 # (invariant, planted bug it must catch). Which bug each invariant catches, from BUG-CLASSES.md §3.
 CATCHES = [
-    ("backward.grad_input", StrideTailGradInput),
-    ("backward.grad_input", ClippedUpstream),
-    ("backward.grad_weight", GradWeightNoDilation),
-    ("backward.grad_weight", GradWeightNoStride),
-    ("backward.grad_bias", GradBiasFirstSample),
-    ("backward.grad_bias", GradBiasMean),
+    ("grad_input.reference", StrideTailGradInput),
+    ("grad_input.reference", ClippedUpstream),
+    ("grad_weight.reference", GradWeightNoDilation),
+    ("grad_weight.reference", GradWeightNoStride),
+    ("grad_bias.reference", GradBiasFirstSample),
+    ("grad_bias.reference", GradBiasMean),
     ("backward.zero_batch", ZeroBatchNaNWeight),
-    ("backward.linearity", ClippedUpstream),
+    ("backward.upstream_linearity", ClippedUpstream),
     ("backward.bias_independence", NoBiasSkipsLastChannel),
-    ("backward.adjoint", StrideTailGradInput),
-    ("backward.adjoint", GradWeightNoDilation),
-    ("backward.adjoint", GradWeightNoStride),
-    ("backward.weight_correlation", GradWeightNoStride),
-    ("backward.weight_correlation", GradWeightNoDilation),
-    ("backward.input_transposed", StrideTailGradInput),
-    ("backward.finite_difference", StrideTailGradInput),
-    ("backward.finite_difference", GradWeightNoDilation),
+    ("backward.adjoint_identity", StrideTailGradInput),
+    ("backward.adjoint_identity", GradWeightNoDilation),
+    ("backward.adjoint_identity", GradWeightNoStride),
+    ("grad_weight.forward_correlation", GradWeightNoStride),
+    ("grad_weight.forward_correlation", GradWeightNoDilation),
+    ("grad_input.forward_flipped_kernel", StrideTailGradInput),
+    ("backward.finite_differences", StrideTailGradInput),
+    ("backward.finite_differences", GradWeightNoDilation),
     ("transposed.contract", OutputPaddingAsInputPadding),
     ("transposed.reference", TransposedNoDilation),
     ("transposed.reference", OutputPaddingAsInputPadding),
-    ("transposed.matches_grad_input", TransposedNoDilation),
+    ("transposed.grad_input_identity", TransposedNoDilation),
 ]
 
 
@@ -304,7 +304,7 @@ def test_catches_planted_bug(inv_id, bug):
 
 # Where the reason matters, the failure must name it (not just any mismatch).
 REASONS = {
-    ("backward.linearity", ClippedUpstream): "homogeneity in g",
+    ("backward.upstream_linearity", ClippedUpstream): "homogeneity in g",
     ("backward.zero_batch", ZeroBatchNaNWeight): "exactly +0",
     ("backward.bias_independence", NoBiasSkipsLastChannel): "grad_w with b == grad_w with b=None",
     ("transposed.contract", OutputPaddingAsInputPadding): "shape",
@@ -325,19 +325,19 @@ def test_every_invariant_catches_a_planted_bug():
 def test_planted_bugs_pass_where_they_do_not_apply(reference_adapter):
     """A planted bug must not be reported by an unrelated reference check: the transposed
     bugs leave the backward alone and the backward bugs leave the transposed pass alone."""
-    assert _run(convwitness.load_adapter(TransposedNoDilation()), "backward.grad_input").verdict == "pass"
+    assert _run(convwitness.load_adapter(TransposedNoDilation()), "grad_input.reference").verdict == "pass"
     assert _run(convwitness.load_adapter(GradBiasMean()), "transposed.reference").verdict == "pass"
 
 
 def test_shrunk_witness_replays(tmp_path):
     """With shrinking on, the saved witness is a minimal case that still fails when replayed
     through the invariant alone (no hypothesis)."""
-    from convwitness.case import load_case
+    from convwitness.cases.case import load_case
     adapter = convwitness.load_adapter(StrideTailGradInput())
-    r = run_invariant(adapter, get("backward.input_transposed"), "quick", seed=0,
+    r = run_invariant(adapter, get("grad_input.forward_flipped_kernel"), "quick", seed=0,
                       report_dir=str(tmp_path))
     assert r.verdict == "fail"
     spec = convwitness.ConvSpec.from_dict(r.witness["spec"])
     assert any(s > 1 and rem for s, rem in zip(spec.stride, spec.remainder))
     case, _ = load_case(str(tmp_path / r.witness["path"]))
-    assert not get("backward.input_transposed").check(adapter, case).ok
+    assert not get("grad_input.forward_flipped_kernel").check(adapter, case).ok

@@ -1,7 +1,7 @@
 """Process isolation, the journal and interrupted runs, through the real CLI.
 
 Each faulty adapter must give its verdict, the run must finish within its bounds,
-the report must validate against the shipped schema (convwitness.report), and the
+the report must validate against the shipped schema (convwitness.report.document), and the
 exit code must be 1 — 0 for the adapter that only prints.
 """
 from __future__ import annotations
@@ -15,7 +15,7 @@ import time
 
 import pytest
 
-from convwitness.report import load_report
+from convwitness.report.document import load_report
 
 FIXTURE = os.path.join(os.path.dirname(__file__), "fixtures", "faulty_adapters.py")
 BASE = ["--profile", "quick", "--only", "forward.reference,forward.contract",
@@ -24,7 +24,7 @@ BASE = ["--profile", "quick", "--only", "forward.reference,forward.contract",
 
 def _run(args, cwd, timeout=240):
     t0 = time.monotonic()
-    proc = subprocess.run([sys.executable, "-m", "convwitness.cli", *args], cwd=cwd,
+    proc = subprocess.run([sys.executable, "-m", "convwitness.cli.main", *args], cwd=cwd,
                           capture_output=True, text=True, timeout=timeout)
     return proc, time.monotonic() - t0
 
@@ -91,7 +91,7 @@ def _journal_results(path):
 
 def test_sigkill_midway_rebuilds_every_finished_invariant(tmp_path):
     report = tmp_path / "r"
-    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli", "run", "--adapter",
+    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli.main", "run", "--adapter",
                              f"{FIXTURE}:Printing", "--report", str(report), "--profile", "standard",
                              "--quiet"], cwd=tmp_path, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
@@ -112,7 +112,7 @@ def test_sigkill_midway_rebuilds_every_finished_invariant(tmp_path):
 
 def test_ctrl_c_writes_a_partial_report(tmp_path):
     report = tmp_path / "r"
-    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli", "run", "--adapter",
+    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli.main", "run", "--adapter",
                              f"{FIXTURE}:Printing", "--report", str(report), "--profile", "standard",
                              "--quiet"], cwd=tmp_path, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
@@ -142,7 +142,7 @@ def test_views_cross_the_worker_boundary_with_their_strides():
     # step-slice view is not C-contiguous; the worker must see such a view, not a packed
     # copy, or a defect that reads views as packed (BUG-CLASSES C11) would hide there
     import numpy as np
-    from convwitness.arena import Arena, copy_keeping_strides, pack, unpack
+    from convwitness.boundary.isolation.arena import Arena, copy_keeping_strides, pack, unpack
     base = np.arange(2 * 3 * 8, dtype=np.float32).reshape(2, 3, 8)
     view = base[:, 1:, ::2]
     arena = Arena.create(size=1 << 16)
@@ -161,7 +161,7 @@ def test_views_cross_the_worker_boundary_with_their_strides():
     ("convwitness.adapters.zoo_state:ViewReadAsPacked", 1), ("reference", 0)])
 def test_views_invariant_under_process_isolation(tmp_path, adapter, code):
     # the planted C11 defect is caught through the worker process, the reference is not flagged
-    proc, _ = _run(["run", "--adapter", adapter, "--only", "inputs.views", "--isolation", "process",
+    proc, _ = _run(["run", "--adapter", adapter, "--only", "call.strided_views", "--isolation", "process",
                     "--quiet", "--report", str(tmp_path / "r")], cwd=tmp_path)
     assert proc.returncode == code, proc.stdout + proc.stderr
     doc = load_report(str(tmp_path / "r" / "report.json"))

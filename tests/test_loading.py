@@ -28,8 +28,8 @@ SPEC = ConvSpec(batch=1, in_channels=1, out_channels=1, input_size=(5, 5), kerne
 
 FIXTURE = '''
 import numpy as np
-from convwitness import reference as _ref
-from convwitness.spec import ConvSpec as _Spec
+from convwitness.numerics import reference as _ref
+from convwitness.geometry.spec import ConvSpec as _Spec
 
 
 def _y(x, w, b, stride, padding, dilation, groups):

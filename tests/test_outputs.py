@@ -1,7 +1,7 @@
 """The views of a report (HTML, Markdown, JUnit XML) and `convwitness diff`.
 
 The systems under test are the report consumers; the runs they consume are real
-runs of the demo port (reports/_demo/kestrel_port.py: release 0.3.0 correct, 0.3.1
+runs of the demo port (reports/_demo/brindlemoss_port.py: release 0.3.0 correct, 0.3.1
 with a planted grouped-bias bug) and of the built-in reference adapter.
 """
 from __future__ import annotations
@@ -15,15 +15,15 @@ from html.parser import HTMLParser
 
 import pytest
 
-from convwitness.cli import parse_args, run
-from convwitness.report import load_report, validate_report
+from convwitness.cli.main import parse_args, run
+from convwitness.report.document import load_report, validate_report
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-DEMO = os.path.join(ROOT, "reports", "_demo", "kestrel_port.py")
-# the bias bug shows in these; forward.contract and forward.padding pass in both releases;
-# forward.special is information only (the port does not claim IEEE special values)
-ONLY = "forward.contract,forward.reference,forward.bias_shift,forward.groups,forward.padding,forward.special"
-BROKEN = {"forward.reference", "forward.bias_shift", "forward.groups"}
+DEMO = os.path.join(ROOT, "reports", "_demo", "brindlemoss_port.py")
+# the bias bug shows in these; forward.contract and forward.explicit_padding pass in both releases;
+# forward.special_values is information only (the port does not claim IEEE special values)
+ONLY = "forward.contract,forward.reference,forward.bias_shift,forward.group_split,forward.explicit_padding,forward.special_values"
+BROKEN = {"forward.reference", "forward.bias_shift", "forward.group_split"}
 
 
 def cli(*argv):
@@ -42,9 +42,9 @@ def _run(tmp, name, adapter, seed=0, only=ONLY):
 @pytest.fixture(scope="module")
 def reports(tmp_path_factory):
     tmp = str(tmp_path_factory.mktemp("views"))
-    rc_good, good = _run(tmp, "good", f"{DEMO}:KestrelPort030")
-    rc_bad, bad = _run(tmp, "bad", f"{DEMO}:KestrelPort")
-    _, good2 = _run(tmp, "good2", f"{DEMO}:KestrelPort030")
+    rc_good, good = _run(tmp, "good", f"{DEMO}:BrindlemossPort030")
+    rc_bad, bad = _run(tmp, "bad", f"{DEMO}:BrindlemossPort")
+    _, good2 = _run(tmp, "good2", f"{DEMO}:BrindlemossPort030")
     assert (rc_good, rc_bad) == (0, 1)
     return {"good": good, "bad": bad, "good2": good2}
 
@@ -78,14 +78,14 @@ def test_junit_xml_parses_with_one_testcase_per_invariant(reports):
             r = by_id[c.get("name")]
             assert r["message"] in f.text and r["witness"]["path"] in f.text
             assert f.get("message") == r["message"].splitlines()[0]
-    special = next(c for c in cases if c.get("name") == "forward.special")
+    special = next(c for c in cases if c.get("name") == "forward.special_values")
     assert special.find("skipped") is not None and "information only" in special.find("skipped").get("message")
     suite = root.find("testsuite")
     assert int(suite.get("tests")) == len(cases) and int(suite.get("failures")) == len(BROKEN)
 
 
 def test_junit_xml_holds_control_characters_and_markup(reports):
-    from convwitness.junit import render
+    from convwitness.report.junit import render
     doc = copy.deepcopy(_doc(reports["bad"]))
     r = next(r for r in doc["invariants"] if r["id"] == "forward.reference")
     r["message"] = "bad \x1b[31mred\x1b[0m & <tag> ]]> \x00 end\nsecond line"
@@ -142,8 +142,8 @@ def test_html_is_self_contained_and_shows_every_part(reports):
 
 
 def test_html_prints_small_witness_arrays_from_the_npz(reports):
-    from convwitness.case import load_case
-    from convwitness.html import witness_arrays
+    from convwitness.cases.case import load_case
+    from convwitness.report.html import witness_arrays
     doc = _doc(reports["bad"])
     r = next(r for r in doc["invariants"] if r["id"] == "forward.reference")
     case, _ = load_case(os.path.join(reports["bad"], r["witness"]["path"]))
@@ -158,7 +158,7 @@ def test_html_prints_small_witness_arrays_from_the_npz(reports):
 
 
 def test_html_escapes_strings_from_adapters():
-    from convwitness.html import render
+    from convwitness.report.html import render
     doc = _synthetic()
     page = render(doc)
     p = _parse(page)
@@ -173,7 +173,7 @@ def _synthetic():
     """A real report with adapter-controlled strings replaced by markup."""
     import tempfile
     with tempfile.TemporaryDirectory() as tmp:
-        _rc, folder = _run(tmp, "x", f"{DEMO}:KestrelPort", only="forward.reference")
+        _rc, folder = _run(tmp, "x", f"{DEMO}:BrindlemossPort", only="forward.reference")
         doc = _doc(folder)
     doc["adapter"]["name"] = "<script>document.title='pwned'</script>"
     doc["adapter"]["version"] = "\"><svg onload=alert(1)>"
@@ -191,7 +191,7 @@ def test_markdown_summary_names_failures_and_replays(reports):
     with open(os.path.join(reports["bad"], "summary.md"), encoding="utf-8") as fh:
         md = fh.read()
     head = md.splitlines()[0]
-    assert "NOT CONFORMANT" in head and "kestrel" in head
+    assert "NOT CONFORMANT" in head and "brindlemoss" in head
     for r in doc["invariants"]:
         if r["verdict"] == "fail":
             assert f"| `{r['id']}` |" in md and r["witness"]["replay"] in md
@@ -201,7 +201,7 @@ def test_markdown_summary_names_failures_and_replays(reports):
 
 
 def test_markdown_escapes_table_breakers():
-    from convwitness.markdown import md_code, md_text
+    from convwitness.report.markdown import md_code, md_text
     assert md_text("a|b<script>") == "a\\|b&lt;script&gt;"
     assert md_code("x`y") == "``x`y``"
 
@@ -229,42 +229,42 @@ def test_diff_of_two_passing_reports_exits_0(reports):
 
 
 def test_diff_flags_accuracy_drift_even_when_passing(reports):
-    from convwitness.diff import compare
+    from convwitness.report.diff import diff_reports
     old = _doc(reports["good"])
     new = copy.deepcopy(old)
     r = next(r for r in new["invariants"] if r["id"] == "forward.reference")
     r["worst_share"] = float(r["worst_share"]) + 0.3
-    d = compare(old, new, drift=0.25)
+    d = diff_reports(old, new, drift=0.25)
     assert d["regressed"] and [e["id"] for e in d["drift"]] == ["forward.reference"]
-    assert not compare(old, new, drift=0.5)["regressed"]
+    assert not diff_reports(old, new, drift=0.5)["regressed"]
 
 
 def test_diff_matches_failures_by_fingerprint_not_message(reports):
-    from convwitness.diff import compare, fingerprint
+    from convwitness.report.diff import diff_reports, fingerprint
     old = _doc(reports["bad"])
     new = copy.deepcopy(old)
-    r = next(r for r in new["invariants"] if r["id"] == "forward.groups")
+    r = next(r for r in new["invariants"] if r["id"] == "forward.group_split")
     r["message"] = "entirely different words, 1.234e+99"
-    d = compare(old, new)
-    e = next(e for e in d["still_failing"] if e["id"] == "forward.groups")
+    d = diff_reports(old, new)
+    e = next(e for e in d["still_failing"] if e["id"] == "forward.group_split")
     assert e["same_failure"] and not d["regressed"]
     spec = dict(r["witness"]["spec"])
     spec.update(input_size=[s + 3 for s in spec["input_size"]])       # same shape of geometry
     assert fingerprint({**r, "witness": {**r["witness"], "spec": spec}}) == fingerprint(r)
     spec.update(dtype="float32" if spec["dtype"] == "float64" else "float64")
     r["witness"] = {**r["witness"], "spec": spec}
-    e = next(e for e in compare(old, new)["still_failing"] if e["id"] == "forward.groups")
+    e = next(e for e in diff_reports(old, new)["still_failing"] if e["id"] == "forward.group_split")
     assert not e["same_failure"]
 
 
 def test_diff_reports_coverage_library_and_scope_changes(reports):
-    from convwitness.diff import compare
+    from convwitness.report.diff import diff_reports
     old = _doc(reports["good"])
     new = copy.deepcopy(old)
     new["environment"]["libraries"]["numpy"] = "0.0.1-other"
     new["coverage"]["dtype"] = {"float64": 3}
     gone = new["invariants"].pop(0)
-    d = compare(old, new)
+    d = diff_reports(old, new)
     assert d["libraries"][0]["name"] == "numpy"
     assert "dtype=float32" in d["coverage"]["disappeared"]
     assert [e["id"] for e in d["no_longer_checked"]] == [gone["id"]] and d["regressed"]

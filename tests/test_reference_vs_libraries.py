@@ -6,7 +6,7 @@ These tests call the libraries directly -- not through convwitness's adapters --
 they check the reference alone.
 
 Tolerance: both sides compute in float64, so each element may differ by the float64
-bound of convwitness.bounds.derive with ErrorModel(accumulate="float64"): gamma_n at
+bound of convwitness.numerics.bounds.derive with ErrorModel(accumulate="float64"): gamma_n at
 u = 2^-53 on the magnitude |x|*|w| for the library, the reference's own gamma_n,
 and u|y| for the final rounding (Higham 2002, §3.1, gamma_n). No looser factor.
 """
@@ -18,8 +18,8 @@ from hypothesis import HealthCheck, assume, example, given, settings
 from hypothesis import strategies as st
 
 from convwitness import ConvSpec, SpecError
-from convwitness import reference as ref
-from convwitness.bounds import ErrorModel, derive
+from convwitness.numerics import reference as ref
+from convwitness.numerics.bounds import ErrorModel, derive
 
 F64 = ErrorModel(accumulate="float64")
 SETTINGS = settings(max_examples=40, deadline=None,

@@ -100,7 +100,7 @@ def test_input_size_axis_count(size):
 
 @pytest.mark.parametrize("dtype", ["int8", "float128", "tf32", "half"])
 def test_bad_dtype(dtype):
-    # tf32 is an operand-reading mode, not a storage dtype (convwitness.formats docstring)
+    # tf32 is an operand-reading mode, not a storage dtype (convwitness.geometry.formats docstring)
     msg = rejection(dtype=dtype)
     assert f"dtype={dtype!r}" in msg and "expected one of" in msg and "float32" in msg
 

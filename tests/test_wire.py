@@ -18,12 +18,12 @@ import pytest
 
 from convwitness import ConvSpec
 from convwitness.adapters.reference import ReferenceAdapter
-from convwitness.contract import wrap
+from convwitness.boundary.contract import wrap
 from convwitness.errors import (AdapterCrashed, AdapterLoadError, AdapterOutputError,
                                 AdapterRaised, AdapterTimeout)
-from convwitness.loading import load_adapter
-from convwitness.wire import ExecAdapter
-from convwitness.wire_codec import (MAGIC, Reader, Region, WireEOF, WireFormatError, encode,
+from convwitness.boundary.loading import load_adapter
+from convwitness.boundary.wire.client import ExecAdapter
+from convwitness.boundary.wire.codec import (MAGIC, Reader, Region, WireEOF, WireFormatError, encode,
                                     read_message)
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -60,7 +60,7 @@ SHAPES = [(), (0,), (3, 0, 2), (5,), (2, 3, 4), (2, 3, 9, 7), (1, 1, 2, 2, 3)]
 def test_codec_round_trip_every_dtype_and_shape(tmp_path, dtype):
     # numpy dtype names and C order (numpy's documented array layout); values survive
     # bit for bit, zero-size arrays included.
-    from convwitness.wire_codec import dtype_of
+    from convwitness.boundary.wire.codec import dtype_of
     dt = dtype_of(dtype)
     rng = np.random.default_rng(0)
     arrays = []
@@ -349,7 +349,7 @@ def test_bad_commands_fail_the_load_in_one_line(tmp_path):
 
 
 def test_memory_limit_stops_a_hungry_program(tmp_path):
-    from convwitness.wire import parse_bytes
+    from convwitness.boundary.wire.client import parse_bytes
     assert parse_bytes("4GiB") == 4 << 30 and parse_bytes("512M") == 512 << 20
     assert parse_bytes(1024) == 1024 and parse_bytes(None) is None
     script = tmp_path / "broken.py"
@@ -368,10 +368,10 @@ def test_memory_limit_stops_a_hungry_program(tmp_path):
 def test_a_served_adapter_is_certified_through_exec(tmp_path):
     # the same path a foreign port takes: CLI -> exec: -> serve -> the reference
     import io
-    from convwitness.cli import parse_args, run
+    from convwitness.cli.main import parse_args, run
     out, err = io.StringIO(), io.StringIO()
     code = run(parse_args(["run", "--adapter", f"exec:{PY} -m convwitness.serve reference",
-                           "--only", "forward.reference,backward.grad_input,transposed.reference",
+                           "--only", "forward.reference,grad_input.reference,transposed.reference",
                            "--report", str(tmp_path / "r"), "--quiet"]), out, err)
     assert code == 0, out.getvalue() + err.getvalue()
     doc = json.loads((tmp_path / "r" / "report.json").read_text())

@@ -2,7 +2,7 @@
 
 What is checked against outside sources:
 - the zoo's correct numpy control against torch.nn.functional (conv{1,2,3}d and
-  autograd) in float64, within the float64 bound of convwitness.bounds (Higham 2002,
+  autograd) in float64, within the float64 bound of convwitness.numerics.bounds (Higham 2002,
   §3.1), so the control is correct by an outside judge and not by our own reference;
 - every planted bug is a defect class of shared/BUG-CLASSES.md, each citing the public
   issue of a real library that shipped it (the class id is on the adapter); the test
@@ -18,12 +18,12 @@ import numpy as np
 import pytest
 
 from convwitness import ConvSpec
-from convwitness import reference as ref
+from convwitness.numerics import reference as ref
 from convwitness.adapters.zoo import CORRECT, ZOO, bug_class_of
 from convwitness.adapters.zoo_numpy import NumpyTapAdapter
-from convwitness.bounds import ErrorModel, derive
+from convwitness.numerics.bounds import ErrorModel, derive
 from convwitness.invariants import catalogue
-from convwitness.selftest import ZooOutcome, detection_matrix, run_zoo, selftest
+from convwitness.run.selftest import ZooOutcome, detection_matrix, run_zoo, selftest
 
 
 def test_zoo_has_twenty_bugs_or_more_each_with_a_bug_class():
@@ -71,7 +71,7 @@ def test_selftest_command_exit_codes(monkeypatch):
 
 
 def test_selftest_unknown_entry_is_a_usage_error():
-    from convwitness.cli import parse_args, run
+    from convwitness.cli.main import parse_args, run
     err = io.StringIO()
     rc = run(parse_args(["selftest", "--only", "no_such_bug"]), stdout=io.StringIO(), stderr=err)
     assert rc == 2

@@ -2,7 +2,7 @@
 
 Each invariant is a small registered function ``check(adapter, case) -> Evidence``
 with an id such as ``forward.reference``, the adapter passes it needs, the cases it
-needs (:class:`~convwitness.strategies.Needs`) and a one-line statement; its
+needs (:class:`~convwitness.cases.strategies.Needs`) and a one-line statement; its
 docstring states the property in maths. ``catalogue()`` lists them in a fixed order.
 """
 from __future__ import annotations
@@ -11,14 +11,27 @@ import inspect
 from dataclasses import dataclass, field
 from typing import Callable
 
-from ..capabilities import Capabilities
+from ..geometry.capabilities import Capabilities
 from ..errors import ConvWitnessError
-from ..profiles import Profile, get_profile
-from ..strategies import Needs
+from ..cases.profiles import Profile, get_profile
+from ..cases.strategies import Needs
 
-__all__ = ["Invariant", "Context", "invariant", "catalogue", "get", "REGISTRY"]
+__all__ = ["Invariant", "Context", "invariant", "catalogue", "by_surface", "get", "REGISTRY", "SURFACES"]
 
 REGISTRY: dict[str, "Invariant"] = {}
+
+#: The surfaces of ``<surface>.<property>`` ids, in listing order: what is checked.
+SURFACES = {
+    "forward": "the forward pass",
+    "grad_input": "the input gradient of the backward pass",
+    "grad_weight": "the weight gradient of the backward pass",
+    "grad_bias": "the bias gradient of the backward pass",
+    "backward": "the backward pass as a whole (all three gradients)",
+    "transposed": "the transposed convolution",
+    "call": "the call itself: inputs left untouched, strided views",
+    "precision": "the precision the error model declares",
+    "long_sum": "long accumulations",
+}
 
 
 @dataclass
@@ -67,7 +80,7 @@ class Invariant:
 
     def strategy(self, caps: Capabilities, profile: Profile):
         """The hypothesis strategy of this invariant's examples (tuples of Cases)."""
-        from ..strategies import examples
+        from ..cases.strategies import examples
         if self.cases is not None:
             return self.cases(caps, get_profile(profile))
         return examples(caps, profile, self.needs_for(caps))
@@ -84,6 +97,11 @@ def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | No
               requires=None, informational_unless: str | None = None, adjust=None, cases=None,
               steer: bool = False):
     """Register ``func(adapter, case, context) -> Evidence`` as an invariant."""
+    surface, dot, prop = id.partition(".")
+    if surface not in SURFACES or not dot or not prop or "." in prop:
+        raise ConvWitnessError(f"invariant id {id!r}: expected <surface>.<property> with a surface "
+                               f"of {list(SURFACES)} and a one-level property")
+
     def deco(func):
         if id in REGISTRY:
             raise ConvWitnessError(f"invariant id {id!r} registered twice")
@@ -99,10 +117,15 @@ def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | No
 _ORDER = ("forward", "equivalence", "state", "special", "backward", "own", "transposed", "precision", "stress")
 
 
+# Modules of this package that hold helpers, not invariants.
+_HELPERS = ("evidence",)
+
+
 def _load():
     import importlib
     import pkgutil
-    found = [m.name for m in pkgutil.iter_modules(__path__) if not m.name.startswith("_")]
+    found = [m.name for m in pkgutil.iter_modules(__path__)
+             if not m.name.startswith("_") and m.name not in _HELPERS]
     for name in [n for n in _ORDER if n in found] + sorted(set(found) - set(_ORDER)):
         importlib.import_module(f"{__name__}.{name}")
 
@@ -111,6 +134,14 @@ def catalogue() -> list[Invariant]:
     """Every registered invariant, in registration order."""
     _load()
     return list(REGISTRY.values())
+
+
+def by_surface() -> dict[str, list[Invariant]]:
+    """The catalogue grouped by surface, surfaces in the order of :data:`SURFACES`."""
+    groups: dict[str, list[Invariant]] = {s: [] for s in SURFACES}
+    for inv in catalogue():
+        groups[inv.id.partition(".")[0]].append(inv)
+    return {s: invs for s, invs in groups.items() if invs}
 
 
 def get(id: str) -> Invariant:

@@ -5,10 +5,11 @@ from dataclasses import replace
 
 import numpy as np
 
-from .. import reference as ref
-from ..bounds import U64, Bound, derive, gamma
-from ..evidence import Evidence, compare
-from ..formats import get_format
+from ..numerics import reference as ref
+from ..numerics.bounds import Bound, derive
+from ..numerics.gamma import U64, gamma
+from .evidence import Evidence, compare
+from ..geometry.formats import get_format
 
 __all__ = ["copies", "model_of", "pass_bound", "judge", "judge_pair", "forward_expected",
            "run_forward", "dot_rounding", "overflow_free", "self_bound"]

@@ -3,18 +3,18 @@ batch, linearity in the upstream gradient, and independence of the bias argument
 
 Notation: g is the upstream gradient dL/dy; GI(g), GW(g), GB(g) the input, weight and
 bias gradients an adapter returns for it; B_GI, B_GW, B_GB their derived bounds
-(convwitness.bounds: gamma_n of Higham 2002 §3.1 with n = C_out/G prod(k) for GI and
+(convwitness.numerics.bounds: gamma_n of Higham 2002 §3.1 with n = C_out/G prod(k) for GI and
 n = N prod(L_out) for GW and GB).
 """
 from __future__ import annotations
 
 import numpy as np
 
-from ..bounds import U64, gamma
-from ..evidence import Evidence, compare, merge
-from ..formats import get_format, to_format
-from ..strategies import Needs
-from ..values import aux_rng
+from ..numerics.gamma import U64, gamma
+from .evidence import Evidence, compare, combine
+from ..geometry.formats import get_format, to_format
+from ..cases.strategies import Needs
+from ..cases.values import aux_rng
 from . import invariant
 from ._common import judge, model_of, overflow_free, pass_bound
 
@@ -47,7 +47,7 @@ def _reference_check(adapter, case, index: int, pass_: str):
                  criterion=f"backward.{pass_}: |{name} - {name}_ref| <= bound")
 
 
-@invariant("backward.grad_input", steer=True, passes=("backward",),
+@invariant("grad_input.reference", steer=True, passes=("backward",),
            statement="the input gradient agrees with the float64 reference within the derived bound")
 def grad_input_reference(adapter, case, ctx):
     """|GI(g) - GI_ref(g)| <= c |g| *^T |w| + u_out |GI_ref| elementwise, with c from the
@@ -55,7 +55,7 @@ def grad_input_reference(adapter, case, ctx):
     return _reference_check(adapter, case, 0, "grad_input")
 
 
-@invariant("backward.grad_weight", steer=True, passes=("backward",),
+@invariant("grad_weight.reference", steer=True, passes=("backward",),
            statement="the weight gradient agrees with the float64 reference within the derived bound")
 def grad_weight_reference(adapter, case, ctx):
     """|GW(g) - GW_ref(g)| <= c (|x| * |g|) + u_out |GW_ref| elementwise, with
@@ -63,7 +63,7 @@ def grad_weight_reference(adapter, case, ctx):
     return _reference_check(adapter, case, 1, "grad_weight")
 
 
-@invariant("backward.grad_bias", steer=True, passes=("backward",), needs=Needs(bias=True), requires=_needs_bias,
+@invariant("grad_bias.reference", steer=True, passes=("backward",), needs=Needs(bias=True), requires=_needs_bias,
            statement="the bias gradient is the sum of the upstream gradient over batch and space")
 def grad_bias_reference(adapter, case, ctx):
     """GB[o] = sum_{n, h} g[n, o, h] within gamma_{n-1}(u_acc) sum |g| + u_out |GB_ref|,
@@ -239,7 +239,7 @@ def _homogeneity(adapter, case, g1, base):
     return results
 
 
-@invariant("backward.linearity", passes=("backward",),
+@invariant("backward.upstream_linearity", passes=("backward",),
            statement="the gradients are linear in the upstream gradient: additive within the "
                      "bounds, homogeneous under 2^k bit for bit")
 def linearity(adapter, case, ctx):
@@ -248,7 +248,7 @@ def linearity(adapter, case, ctx):
     (deterministic adapters, no under/overflow)."""
     g1 = case.grad_y
     base = _bounds(adapter, case.spec, case.x, case.w, g1, case.b is not None)
-    return merge(*_additivity(adapter, case, g1), *_homogeneity(adapter, case, g1, base))
+    return combine(*_additivity(adapter, case, g1), *_homogeneity(adapter, case, g1, base))
 
 
 @invariant("backward.bias_independence", passes=("backward",), needs=Needs(bias=True),
@@ -270,4 +270,4 @@ def bias_independence(adapter, case, ctx):
                                criterion=f"bias independence: {name} with b == {name} with b=None "
                                          "within twice the bound",
                                explanation=bound.explain()))
-    return merge(*results)
+    return combine(*results)

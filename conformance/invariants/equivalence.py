@@ -11,12 +11,12 @@ from dataclasses import replace
 
 import numpy as np
 
-from ..evidence import Evidence, compare, merge
-from ..spec import ConvSpec
-from ..strategies import Needs
-from ..values import aux_rng, fill
+from .evidence import Evidence, compare, combine
+from ..geometry.spec import ConvSpec
+from ..cases.strategies import Needs
+from ..cases.values import aux_rng, fill
 from . import invariant
-from .. import reference as ref
+from ..numerics import reference as ref
 from ._common import copies, overflow_free, run_forward, self_bound
 
 
@@ -54,7 +54,7 @@ def _same(adapter, spec, y, y_other, bound_a, bound_b, *, criterion, mask=None):
                    criterion=criterion, explanation=f"sum of both bounds; {bound_a.explain()}")
 
 
-@invariant("forward.groups", passes=("forward",), needs=Needs(grouped=True),
+@invariant("forward.group_split", passes=("forward",), needs=Needs(grouped=True),
            requires=lambda caps: None if caps.groups else "adapter does not claim groups",
            statement="a grouped convolution equals the per-group convolutions side by side")
 def groups(adapter, case, ctx):
@@ -97,7 +97,7 @@ def _explicit_padding(spec: ConvSpec, x: np.ndarray):
     return xp, spec.replace(input_size=size, padding=0)
 
 
-@invariant("forward.padding", passes=("forward",), needs=Needs(padding=True),
+@invariant("forward.explicit_padding", passes=("forward",), needs=Needs(padding=True),
            statement="padding equals explicit zeros around the input (cropping where negative)")
 def padding(adapter, case, ctx):
     """f(x; p_lo, p_hi) = f(pad(x, p_lo, p_hi); 0, 0), negative padding cropping the input,
@@ -115,7 +115,7 @@ def padding(adapter, case, ctx):
                  criterion=f"padding: f(x; {spec.padding}) == f(explicitly padded x; 0)")
 
 
-@invariant("forward.stride", passes=("forward",), needs=Needs(stride=True),
+@invariant("forward.stride_subsampling", passes=("forward",), needs=Needs(stride=True),
            statement="a strided convolution is the stride-1 result subsampled by the stride")
 def stride(adapter, case, ctx):
     """f(x; s)[..., h] = f(x; 1)[..., h*s] for h < L_out, within the sum of both bounds."""
@@ -148,7 +148,7 @@ def _dilate_kernel(spec: ConvSpec, w: np.ndarray) -> np.ndarray:
     return out
 
 
-@invariant("forward.dilation", passes=("forward",), needs=Needs(dilation=True),
+@invariant("forward.dilation_expansion", passes=("forward",), needs=Needs(dilation=True),
            statement="a dilated kernel equals the zero-inserted kernel without dilation")
 def dilation(adapter, case, ctx):
     """f(x, w; d) = f(x, w_d; 1) with w_d[t*d] = w[t] and zeros between,
@@ -167,7 +167,7 @@ def dilation(adapter, case, ctx):
                  criterion=f"dilation: f(x, w; d={spec.dilation}) == f(x, zero-inserted w; 1)")
 
 
-@invariant("forward.translation", passes=("forward",),
+@invariant("forward.shift_equivariance", passes=("forward",),
            statement="shifting the input by one stride shifts the output by one position")
 def translation(adapter, case, ctx):
     """With x'[..., i] = x[..., i + s] along one axis: f(x')[..., h] = f(x)[..., h + 1] for every
@@ -214,7 +214,7 @@ def _to_layout(a: np.ndarray, layout: str) -> np.ndarray:
     return np.ascontiguousarray(np.moveaxis(a, -1, 1))
 
 
-@invariant("forward.layout", passes=("forward",),
+@invariant("forward.layout_agreement", passes=("forward",),
            requires=lambda caps: None if {"channels_first", "channels_last"} <= caps.layouts
            else "adapter claims only one layout",
            statement="channels-last and channels-first give the same result")
@@ -264,4 +264,4 @@ def batch_independence(adapter, case, ctx):
     y1 = run_forward(adapter, one, np.ascontiguousarray(case.x[i:i + 1]), case.w, case.b)
     alone = _same(adapter, spec, y[i:i + 1], y1, sub, sub,
                   criterion=f"batch: sample {i} computed alone equals sample {i} of the batch of {N}")
-    return merge(changed, alone)
+    return combine(changed, alone)

@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from .. import reference as ref
+from ..numerics import reference as ref
 from ..errors import AdapterOutputError
-from ..evidence import Evidence, compare, merge
-from ..formats import get_format, to_format
-from ..strategies import Needs
-from ..values import EXACT_KINDS, aux_rng
+from .evidence import Evidence, compare, combine
+from ..geometry.formats import get_format, to_format
+from ..cases.strategies import Needs
+from ..cases.values import EXACT_KINDS, aux_rng
 from . import invariant
 from ._common import copies, judge, model_of, overflow_free, pass_bound, run_forward, self_bound
 
@@ -69,7 +69,7 @@ def _exact_dtypes(caps):
     return tuple(d for d in caps.dtypes if caps.error_model_for(d).algorithm == "direct")
 
 
-@invariant("forward.exact", passes=("forward",), needs=Needs(kinds=EXACT_KINDS),
+@invariant("forward.exact_integers", passes=("forward",), needs=Needs(kinds=EXACT_KINDS),
            requires=lambda caps: None if _exact_dtypes(caps) else
            "no dtype is declared with direct summation (fast algorithms are not exact on integers)",
            adjust=lambda caps, needs: Needs(kinds=needs.kinds, dtypes=_exact_dtypes(caps)),
@@ -85,7 +85,7 @@ def forward_exact(adapter, case, ctx):
     exact_here = bound.magnitude <= bound.exact_limit
     values = np.where(exact_here, 0.0, bound.values)
     ev = compare(y, expected, values, what="y",
-                 criterion=f"forward.exact: y == y_ref where |x|⋆|w| <= {bound.exact_limit:g}",
+                 criterion=f"forward.exact_integers: y == y_ref where |x|⋆|w| <= {bound.exact_limit:g}",
                  explanation=f"{int(exact_here.sum())} of {exact_here.size} elements must be exact; "
                              f"elsewhere {bound.explain()}",
                  allow=overflow_free(spec, adapter, bound))
@@ -179,10 +179,10 @@ def _linearity(adapter, case, name: str, salt: int):
                             + (" bit for bit" if deterministic else " within twice the bound"),
                   explanation="power-of-two scaling commutes with every rounding (no under/overflow)",
                   exact=deterministic)
-    return merge(add, hom)
+    return combine(add, hom)
 
 
-@invariant("forward.linearity.input", passes=("forward",), needs=Needs(kinds=LINEAR_KINDS),
+@invariant("forward.input_linearity", passes=("forward",), needs=Needs(kinds=LINEAR_KINDS),
            statement="y is linear in x: additive within the bound, homogeneous under 2^k bit for bit")
 def linearity_input(adapter, case, ctx):
     """f(x1 + x2) = f(x1) + f(x2) within B(x1) + B(x2) + B(x1+x2);
@@ -190,7 +190,7 @@ def linearity_input(adapter, case, ctx):
     return _linearity(adapter, case, "x", 11)
 
 
-@invariant("forward.linearity.weight", passes=("forward",), needs=Needs(kinds=LINEAR_KINDS),
+@invariant("forward.weight_linearity", passes=("forward",), needs=Needs(kinds=LINEAR_KINDS),
            statement="y is linear in w: additive within the bound, homogeneous under 2^k bit for bit")
 def linearity_weight(adapter, case, ctx):
     """f_{w1 + w2}(x) = f_{w1}(x) + f_{w2}(x) within the summed bounds;

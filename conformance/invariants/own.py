@@ -9,7 +9,7 @@
   arithmetic: the convolution is linear, so the truncation error is zero).
 
 Each comparison is between two computed values of the same exact quantity, so its
-tolerance is the sum of both derived bounds (convwitness.bounds), plus the float64
+tolerance is the sum of both derived bounds (convwitness.numerics.bounds), plus the float64
 rounding of any inner product formed here: gamma_m(2^-53) sum |a_i b_i| for m terms
 (Higham 2002, §3.1).
 """
@@ -17,12 +17,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..bounds import U64, gamma
-from ..evidence import Evidence, compare, merge
-from ..formats import get_format, to_format
-from ..spec import ConvSpec
-from ..strategies import Needs
-from ..values import NUMERIC_KINDS, aux_rng
+from ..numerics.gamma import U64, gamma
+from .evidence import Evidence, compare, combine
+from ..geometry.formats import get_format, to_format
+from ..geometry.spec import ConvSpec
+from ..cases.strategies import Needs
+from ..cases.values import NUMERIC_KINDS, aux_rng
 from . import invariant
 from ._common import overflow_free, pass_bound, run_forward
 from .backward import _backward, _two_sum
@@ -72,7 +72,7 @@ def _scalar(actual, expected, tol, *, what, criterion, explanation):
                    criterion=criterion, explanation=explanation)
 
 
-@invariant("backward.adjoint", steer=True, passes=("forward", "backward"), needs=Needs(kinds=SCALAR_KINDS),
+@invariant("backward.adjoint_identity", steer=True, passes=("forward", "backward"), needs=Needs(kinds=SCALAR_KINDS),
            statement="dot-product test: <f(x) - b, g> = <x, grad_x> = <w, grad_w> for the "
                      "adapter's own forward and backward")
 def adjoint(adapter, case, ctx):
@@ -99,7 +99,7 @@ def adjoint(adapter, case, ctx):
                                criterion=f"adjoint: |<f(x) - b, g> - <{name}, grad_{name}>| <= "
                                          f"sum|g| B_y + sum|{name}| B_grad_{name} + float64 rounding",
                                explanation=f"forward: {by.explain()}; gradient: {bound.explain()}"))
-    return merge(*results)
+    return combine(*results)
 
 
 def _wc_adjust(caps, needs: Needs) -> Needs:
@@ -109,7 +109,7 @@ def _wc_adjust(caps, needs: Needs) -> Needs:
                    dilation=False if not caps.stride else needs.dilation)
 
 
-@invariant("backward.weight_correlation", passes=("forward", "backward"), adjust=_wc_adjust,
+@invariant("grad_weight.forward_correlation", passes=("forward", "backward"), adjust=_wc_adjust,
            statement="the weight gradient equals the correlation of the input with the upstream "
                      "gradient, computed by the adapter's own forward")
 def weight_correlation(adapter, case, ctx):
@@ -160,7 +160,7 @@ def _crop_input(z: np.ndarray, spec: ConvSpec) -> np.ndarray:
     return out
 
 
-@invariant("backward.input_transposed", passes=("forward", "backward"),
+@invariant("grad_input.forward_flipped_kernel", passes=("forward", "backward"),
            statement="the input gradient equals the adapter's own forward of the zero-inserted, "
                      "padded upstream gradient with the flipped kernel")
 def input_transposed(adapter, case, ctx):
@@ -266,7 +266,7 @@ def _fd(adapter, case, name: str, grad, grad_bound, salt: int):
                                f"gradient: {grad_bound.explain()}")
 
 
-@invariant("backward.finite_difference", passes=("forward", "backward"), needs=Needs(kinds=SCALAR_KINDS),
+@invariant("backward.finite_differences", passes=("forward", "backward"), needs=Needs(kinds=SCALAR_KINDS),
            statement="central differences of the adapter's own forward along random directions "
                      "equal the gradients' directional derivatives")
 def finite_difference(adapter, case, ctx):
@@ -279,4 +279,4 @@ def finite_difference(adapter, case, ctx):
     arrays = {"x": case.x, "w": case.w, "grad_y": case.grad_y}
     _, bgx = pass_bound(adapter, spec, "grad_input", arrays)
     _, bgw = pass_bound(adapter, spec, "grad_weight", arrays)
-    return merge(_fd(adapter, case, "x", gx, bgx, 81), _fd(adapter, case, "w", gw, bgw, 82))
+    return combine(_fd(adapter, case, "x", gx, bgx, 81), _fd(adapter, case, "w", gw, bgw, 82))

@@ -19,10 +19,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..evidence import Evidence
-from ..formats import get_format, numpy_dtype
-from ..spec import ConvSpec
-from ..strategies import Needs
+from .evidence import Evidence
+from ..geometry.formats import get_format, numpy_dtype
+from ..geometry.spec import ConvSpec
+from ..cases.strategies import Needs
 from . import invariant
 from ._common import model_of
 

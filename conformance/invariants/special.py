@@ -14,9 +14,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .. import reference as ref
-from ..evidence import Evidence, compare
-from ..strategies import Needs
+from ..numerics import reference as ref
+from .evidence import Evidence, compare
+from ..cases.strategies import Needs
 from . import invariant
 from ._common import copies, judge, pass_bound, run_forward
 
@@ -73,7 +73,7 @@ def _classes(y):
     return c
 
 
-@invariant("forward.special", passes=("forward",), needs=Needs(kinds=("nan", "inf")),
+@invariant("forward.special_values", passes=("forward",), needs=Needs(kinds=("nan", "inf")),
            informational_unless="ieee_special",
            statement="NaN and ±inf reach exactly the outputs IEEE 754 arithmetic says, with one "
                      "padded-tap convention across shapes")
@@ -120,7 +120,7 @@ def special_values(adapter, case, ctx):
                                    "IEEE 754 puts them"), checked=got.size)
 
 
-@invariant("forward.subnormal", passes=("forward",), needs=Needs(kinds=("subnormal",)),
+@invariant("forward.subnormals", passes=("forward",), needs=Needs(kinds=("subnormal",)),
            informational_unless="ieee_special",
            statement="inputs in the subnormal range give results within the bound (gradual underflow)")
 def subnormal(adapter, case, ctx):

@@ -4,9 +4,9 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import SpecError
-from ..evidence import Evidence, compare, merge
-from ..strategies import Needs
-from ..values import aux_rng
+from .evidence import Evidence, compare, combine
+from ..cases.strategies import Needs
+from ..cases.values import aux_rng
 from . import invariant
 from ._common import copies, overflow_free, pass_bound, run_forward
 
@@ -73,7 +73,7 @@ def repeatability(adapter, case, ctx):
                                      f"A, B, A with B = {other.describe()}"))
     untouched = compare(y_first, kept.astype(np.float64), 0.0, exact=True, what="y",
                         criterion="the first result is unchanged by later calls (fresh output arrays)")
-    return merge(untouched, *results)
+    return combine(untouched, *results)
 
 
 @invariant("backward.repeatability", passes=("backward",),
@@ -107,14 +107,14 @@ def backward_repeatability(adapter, case, ctx):
             if a is None or pass_ not in bounds:
                 continue
             results.append(_repeat_check(adapter, spec, a, b, bounds[pass_], f"{label} ({name})"))
-    return merge(*results) if results else Evidence(True, message="nothing to compare")
+    return combine(*results) if results else Evidence(True, message="nothing to compare")
 
 
 def _same_bits(a, b) -> bool:
     return a.shape == b.shape and a.dtype == b.dtype and a.tobytes() == b.tobytes()
 
 
-@invariant("inputs.untouched", passes=("forward",), needs=Needs(),
+@invariant("call.inputs_untouched", passes=("forward",), needs=Needs(),
            statement="no pass modifies its inputs (x, w, b, upstream gradient)")
 def inputs_untouched(adapter, case, ctx):
     """After forward, backward and transposed calls, x, w, b and g hold the same bytes as before."""

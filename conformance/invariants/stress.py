@@ -3,9 +3,9 @@
 Large reductions on tiny outputs, with cheap structured values (all ones, small
 integers, one-hot inputs) whose exact results the reference gets exactly:
 
-* ``stress.forward_long``: one output element sums ``n = C_in * k`` products, n from
+* ``long_sum.forward``: one output element sums ``n = C_in * k`` products, n from
   ~10^3 (quick) up to ~2.5·10^4 (nightly);
-* ``stress.weight_gradient_long``: one weight-gradient element sums ``N * L_out`` terms,
+* ``long_sum.weight_gradient``: one weight-gradient element sums ``N * L_out`` terms,
   from 4096 (quick) to 131072 (nightly).
 
 An accumulator of p bits adding ones stalls at 2^p (256 in bfloat16, 2048 in float16),
@@ -15,10 +15,10 @@ from __future__ import annotations
 
 from hypothesis import assume, strategies as st
 
-from ..case import Case
-from ..spec import ConvSpec
-from ..strategies import Needs
-from ..values import fill
+from ..cases.case import Case
+from ..geometry.spec import ConvSpec
+from ..cases.strategies import Needs
+from ..cases.values import fill
 from . import invariant
 from .backward import grad_bias_reference, grad_weight_reference
 from .forward import forward_reference
@@ -34,7 +34,7 @@ def _spatial(caps, length: int):
 
 
 def _dtype(draw, caps):
-    from ..formats import STORAGE_FORMATS, available
+    from ..geometry.formats import STORAGE_FORMATS, available
     names = [d for d in STORAGE_FORMATS if d in caps.dtypes and available(d)]
     return draw(st.sampled_from(names), label="dtype")
 
@@ -78,7 +78,7 @@ def weight_gradient_long_cases(caps, profile):
     return draw_it()
 
 
-@invariant("stress.forward_long", passes=("forward",), needs=Needs(kinds=KINDS),
+@invariant("long_sum.forward", passes=("forward",), needs=Needs(kinds=KINDS),
            cases=forward_long_cases,
            statement="long forward reductions (n = C_in·k up to ~10^4) stay within the bound")
 def forward_long(adapter, case, ctx):
@@ -87,13 +87,13 @@ def forward_long(adapter, case, ctx):
     return forward_reference(adapter, case, ctx)
 
 
-@invariant("stress.weight_gradient_long", passes=("backward",), needs=Needs(kinds=KINDS),
+@invariant("long_sum.weight_gradient", passes=("backward",), needs=Needs(kinds=KINDS),
            cases=weight_gradient_long_cases,
            statement="weight and bias gradients summing N·L_out ≥ 4096 terms stay within the bound")
 def weight_gradient_long(adapter, case, ctx):
     """|gw - gw_ref| <= bound and |gb - gb_ref| <= bound with N L_out terms per element."""
-    from ..evidence import merge
+    from .evidence import combine
     evs = [grad_weight_reference(adapter, case, ctx)]
     if case.b is not None:
         evs.append(grad_bias_reference(adapter, case, ctx))
-    return merge(*evs)
+    return combine(*evs)

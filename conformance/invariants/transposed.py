@@ -11,8 +11,8 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import AdapterOutputError
-from ..evidence import Evidence, compare
-from ..strategies import Needs
+from .evidence import Evidence, compare
+from ..cases.strategies import Needs
 from . import invariant
 from ._common import copies, judge, overflow_free, pass_bound, run_forward
 
@@ -89,7 +89,7 @@ def _extend(a: np.ndarray, spec, size) -> np.ndarray:
     return out
 
 
-@invariant("transposed.matches_grad_input", passes=("transposed", "backward"),
+@invariant("transposed.grad_input_identity", passes=("transposed", "backward"),
            needs=Needs(transposed=True),
            statement="the transposed convolution equals the input gradient of the matching "
                      "convolution, computed by the adapter's own backward")

@@ -1,0 +1,208 @@
+"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|all]``).
+
+They print measured figures side by side from one run on this machine; nothing here
+is a pass/fail test.
+
+* reference: the float64 reference's forward and backward GFLOP/s against torch's
+  float64 CPU convolution on three shapes, as a ratio, and as a share of numpy's
+  float64 matmul GFLOP/s; plus the per-call time of a tiny case.
+* isolation: per-call overhead of the worker process against in-process calls.
+* harness: what the harness adds per example beyond the adapter's and the
+  reference's own work, measured with an instant adapter.
+"""
+from __future__ import annotations
+
+import statistics
+import sys
+import time
+
+import numpy as np
+
+from ..numerics import reference as ref
+from ..geometry.spec import ConvSpec
+
+SHAPES = {
+    "a: N=8 64->64 56x56 3x3 pad 1": ConvSpec(batch=8, in_channels=64, out_channels=64, input_size=(56, 56),
+                                           kernel_size=(3, 3), padding=1, dtype="float64", bias=False),
+    "b: N=1 3->16 224x224 7x7 s2 pad 3": ConvSpec(batch=1, in_channels=3, out_channels=16, input_size=(224, 224),
+                                               kernel_size=(7, 7), stride=2, padding=3, dtype="float64",
+                                               bias=False),
+    "c: depthwise N=16 32ch 28x28 3x3": ConvSpec(batch=16, in_channels=32, out_channels=32, input_size=(28, 28),
+                                              kernel_size=(3, 3), padding=1, groups=32, dtype="float64",
+                                              bias=False),
+}
+TINY = ConvSpec(batch=2, in_channels=3, out_channels=4, input_size=(9, 7), kernel_size=(3, 2),
+                dtype="float64", bias=False)
+
+
+def best(fn, repeat: int = 7) -> float:
+    fn()
+    times = []
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return min(times)
+
+
+def median(fn, repeat: int = 200) -> float:
+    fn()
+    times = []
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return statistics.median(times)
+
+
+def matmul_gflops() -> float:
+    a = np.random.default_rng(0).standard_normal((2048, 2048))
+    return 2 * 2048 ** 3 / best(lambda: a @ a, 5) / 1e9
+
+
+def bench_reference(out=sys.stdout):
+    try:
+        import torch
+        import torch.nn.functional as F
+    except ImportError:
+        torch = None
+    peak = matmul_gflops()
+    print(f"numpy float64 matmul (2048^3): {peak:.1f} GFLOP/s — the practical ceiling here", file=out)
+    print(f"{'shape':36s} {'pass':9s} {'reference':>12s} {'torch f64':>12s} {'ratio':>7s} {'of matmul':>9s}",
+          file=out)
+    rng = np.random.default_rng(0)
+    for name, spec in SHAPES.items():
+        x = rng.standard_normal(spec.x_shape)
+        w = rng.standard_normal(spec.w_shape)
+        g = rng.standard_normal(spec.y_shape)
+        flops = spec.flops()
+        t_f = best(lambda: ref.forward(spec, x, w))
+        t_b = best(lambda: (ref.grad_input(spec, w, g), ref.grad_weight(spec, x, g)))
+        tt_f = tt_b = float("nan")
+        if torch is not None:
+            xt, wt, gt = torch.from_numpy(x), torch.from_numpy(w), torch.from_numpy(g)
+            pad = tuple(p[0] for p in spec.padding)
+            conv = lambda a, b: F.conv2d(a, b, None, spec.stride, pad, 1, spec.groups)  # noqa: E731
+            tt_f = best(lambda: conv(xt, wt))
+            xr, wr = xt.clone().requires_grad_(), wt.clone().requires_grad_()
+
+            def both():
+                return torch.autograd.grad(conv(xr, wr), (xr, wr), gt)
+            tt_b = best(both) - tt_f
+        for label, t_ref, t_t, fl in (("forward", t_f, tt_f, flops), ("backward", t_b, tt_b, 2 * flops)):
+            gr, gt_ = fl / t_ref / 1e9, fl / t_t / 1e9
+            print(f"{name:36s} {label:9s} {gr:8.2f} GF/s {gt_:8.2f} GF/s {gr / gt_:6.2f}x {gr / peak:8.1%}",
+                  file=out)
+    x = rng.standard_normal(TINY.x_shape)
+    w = rng.standard_normal(TINY.w_shape)
+    g = rng.standard_normal(TINY.y_shape)
+    print(f"tiny {TINY.describe()}: forward {median(lambda: ref.forward(TINY, x, w)) * 1e6:.0f} µs, "
+          f"backward {median(lambda: (ref.grad_input(TINY, w, g), ref.grad_weight(TINY, x, g))) * 1e6:.0f} µs "
+          "(median per call)", file=out)
+
+
+class _Instant:
+    """An adapter that answers at once (a preallocated output): measures overheads."""
+
+    name = "instant"
+
+    def __init__(self):
+        self._cache = {}
+
+    def forward(self, x, w, b, *, stride, padding, dilation, groups, layout="channels_first"):
+        """Answers from a memo of earlier identical calls (the first call computes)."""
+        from ..adapters.reference import _spec
+        spec = _spec(x, w, b, stride, padding, dilation, groups, layout)
+        key = (spec, x.tobytes(), w.tobytes(), None if b is None else b.tobytes())
+        if key not in self._cache:
+            if len(self._cache) > 64:
+                self._cache.clear()
+            self._cache[key] = ref.forward(spec, x, w, b).astype(x.dtype)
+        return self._cache[key].copy()
+
+
+def bench_isolation(out=sys.stdout):
+    from ..boundary.isolation.client import load_isolated
+    small = ConvSpec(batch=2, in_channels=3, out_channels=3, input_size=(9, 7), kernel_size=(1, 1),
+                     dtype="float64", bias=False)
+    large = ConvSpec(batch=8, in_channels=64, out_channels=64, input_size=(56, 56), kernel_size=(1, 1),
+                     dtype="float32", bias=False)
+    rng = np.random.default_rng(0)
+    cases = [(small, rng.standard_normal(small.x_shape), rng.standard_normal(small.w_shape), 400),
+             (large, rng.standard_normal(large.x_shape).astype(np.float32),
+              rng.standard_normal(large.w_shape).astype(np.float32), 30)]
+    spec = "convwitness.bench.main:_Instant"
+    results = {}
+    for mode in ("none", "process"):
+        a = load_isolated(spec, isolation=mode)
+        for s, x, w, n in cases:
+            results[(mode, s)] = median(lambda: a.forward(s, x, w, None), n)
+        getattr(a, "close", lambda: None)()
+    for s, *_ in cases:
+        extra = results[("process", s)] - results[("none", s)]
+        print(f"isolation overhead, {s.describe()} ({s.x_shape} in, {s.y_shape} out): "
+              f"{extra * 1e6:.0f} µs median per call", file=out)
+
+
+def bench_harness(out=sys.stdout):
+    """Per-example cost of the harness beyond the adapter's and the reference's own work."""
+    import dataclasses
+    import functools
+    from ..numerics import reference as refmod
+    from ..boundary.contract import wrap
+    from ..invariants import get
+    from ..cases.profiles import get_profile
+    from ..run.runner import run_invariant
+    spent = {"reference": 0.0, "adapter": 0.0}
+    depth = [0]
+
+    def timed(bucket, fn):
+        @functools.wraps(fn)
+        def inner(*a, **k):
+            if depth[0]:
+                return fn(*a, **k)
+            depth[0] += 1
+            t = time.perf_counter()
+            try:
+                return fn(*a, **k)
+            finally:
+                spent[bucket] += time.perf_counter() - t
+                depth[0] -= 1
+        return inner
+    names = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias", "forward_magnitude",
+             "grad_input_magnitude", "grad_weight_magnitude", "grad_bias_magnitude")
+    saved = {n: getattr(refmod, n) for n in names}
+    instant = _Instant()
+    instant.forward = timed("adapter", instant.forward)
+    adapter = wrap(instant, source="instant")
+    profile = dataclasses.replace(get_profile("quick"), examples=300, values=1)
+    try:
+        for n in names:
+            setattr(refmod, n, timed("reference", saved[n]))
+        for inv_id in ("forward.reference", "forward.contract", "forward.input_linearity"):
+            spent.update(reference=0.0, adapter=0.0)
+            res = run_invariant(adapter, get(inv_id), profile, seed=0)
+            rest = res.duration_s - spent["reference"] - spent["adapter"]
+            n = max(res.examples, 1)
+            print(f"harness, {inv_id}: {res.examples} examples in {res.duration_s:.2f} s; per example "
+                  f"{res.duration_s / n * 1e3:.2f} ms total = {spent['adapter'] / n * 1e3:.2f} adapter + "
+                  f"{spent['reference'] / n * 1e3:.2f} reference + {rest / n * 1e3:.2f} harness "
+                  "(hypothesis drawing, value filling, bounds, comparison)", file=out)
+    finally:
+        for n, fn in saved.items():
+            setattr(refmod, n, fn)
+
+
+def main(argv=None):
+    argv = sys.argv[1:] if argv is None else argv
+    which = argv[0] if argv else "all"
+    if which in ("reference", "all"):
+        bench_reference()
+    if which in ("isolation", "all"):
+        bench_isolation()
+    if which in ("harness", "all"):
+        bench_harness()
+
+
+if __name__ == "__main__":
+    main()

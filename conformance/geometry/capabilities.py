@@ -1,0 +1,184 @@
+"""Capabilities: the part of the geometry space an adapter claims to get right.
+
+A missing declaration means the whole default space: 1-3 spatial axes, float32 and
+float64, channels first, symmetric and asymmetric (non-negative) padding, any
+stride, dilation and groups, with and without bias, zero-size batches, deterministic,
+direct summation in the dtype of the case.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field, fields, replace
+from typing import Mapping
+
+from ..numerics.bounds import ErrorModel
+from ..errors import SpecError
+from .formats import STORAGE_FORMATS
+from .spec import LAYOUTS, ConvSpec
+
+__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES"]
+
+PADDING_KINDS = ("symmetric", "asymmetric", "negative")
+PASS_NAMES = ("forward", "backward", "transposed")
+
+
+def _frozen(name, value, allowed=None, kind=str):
+    if isinstance(value, (str, int)) and not isinstance(value, bool):
+        value = (value,)
+    try:
+        items = frozenset(value)
+    except TypeError:
+        raise SpecError(f"Capabilities: {name}={value!r} must be a collection") from None
+    if allowed is not None:
+        bad = sorted(str(v) for v in items if v not in allowed)
+        if bad:
+            raise SpecError(f"Capabilities: {name}={sorted(map(str, items))} has unknown "
+                            f"entries {bad}; expected a subset of {list(allowed)}")
+    return items
+
+
+@dataclass(frozen=True)
+class Capabilities:
+    """What an adapter claims. ``admits(spec)`` says whether a geometry is claimed.
+
+    ``error_models`` maps a dtype, or ``"dtype/pass"`` (pass one of forward, transposed,
+    grad_input, grad_weight, grad_bias), to its :class:`ErrorModel`; the most specific
+    entry wins, and ``error_model`` covers the rest. ``max_elements`` caps the number of elements of any one array
+    (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
+    """
+
+    ndims: frozenset = frozenset({1, 2, 3})
+    dtypes: frozenset = frozenset({"float32", "float64"})
+    layouts: frozenset = frozenset({"channels_first"})
+    padding: frozenset = frozenset({"symmetric", "asymmetric"})
+    passes: frozenset = frozenset({"forward"})
+    stride: bool = True
+    dilation: bool = True
+    groups: bool = True
+    bias: bool = True
+    zero_batch: bool = True
+    output_padding: bool = True
+    deterministic: bool = True
+    ieee_special: bool = False
+    max_elements: int | None = None
+    error_model: ErrorModel = field(default_factory=ErrorModel)
+    error_models: tuple = ()
+
+    def __post_init__(self):
+        set_ = object.__setattr__
+        set_(self, "ndims", _frozen("ndims", self.ndims, (1, 2, 3)))
+        set_(self, "dtypes", _frozen("dtypes", self.dtypes, STORAGE_FORMATS))
+        set_(self, "layouts", _frozen("layouts", self.layouts, LAYOUTS))
+        set_(self, "padding", _frozen("padding", self.padding, PADDING_KINDS))
+        set_(self, "passes", _frozen("passes", self.passes, PASS_NAMES))
+        em = self.error_models
+        if isinstance(em, Mapping):
+            em = tuple(sorted(em.items()))
+        passes = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
+        for item in em:
+            if not (isinstance(item, tuple) and len(item) == 2 and isinstance(item[1], ErrorModel)):
+                raise SpecError(f"Capabilities: error_models entry {item!r} must be "
+                                "(dtype or 'dtype/pass', ErrorModel)")
+            dt, _, ps = item[0].partition("/")
+            if dt not in STORAGE_FORMATS or (ps and ps not in passes):
+                raise SpecError(f"Capabilities: error_models key {item[0]!r}; expected a dtype "
+                                f"({', '.join(STORAGE_FORMATS)}) or 'dtype/pass' with pass in "
+                                f"{', '.join(passes)}")
+        set_(self, "error_models", tuple(em))
+        if not isinstance(self.error_model, ErrorModel):
+            raise SpecError(f"Capabilities: error_model={self.error_model!r} must be an ErrorModel")
+        if self.max_elements is not None and (not isinstance(self.max_elements, int) or self.max_elements < 1):
+            raise SpecError(f"Capabilities: max_elements={self.max_elements!r} must be a positive int or None")
+
+    def error_model_for(self, dtype: str, pass_: str | None = None) -> ErrorModel:
+        table = dict(self.error_models)
+        if pass_ is not None and f"{dtype}/{pass_}" in table:
+            return table[f"{dtype}/{pass_}"]
+        return table.get(dtype, self.error_model)
+
+    def refusal(self, spec: ConvSpec) -> str | None:
+        """Why the spec is outside the claimed space, or None when it is admitted."""
+        if spec.ndim not in self.ndims:
+            return f"ndim={spec.ndim} not in ndims={sorted(self.ndims)}"
+        if spec.dtype not in self.dtypes:
+            return f"dtype={spec.dtype} not in dtypes={sorted(self.dtypes)}"
+        if spec.layout not in self.layouts:
+            return f"layout={spec.layout} not in layouts={sorted(self.layouts)}"
+        need = "transposed" if spec.transposed else "forward"
+        if need not in self.passes:
+            return f"pass {need} not in passes={sorted(self.passes)}"
+        if not self.stride and any(s != 1 for s in spec.stride):
+            return f"stride={spec.stride} but stride=False"
+        if not self.dilation and any(d != 1 for d in spec.dilation):
+            return f"dilation={spec.dilation} but dilation=False"
+        if not self.groups and spec.groups != 1:
+            return f"groups={spec.groups} but groups=False"
+        if not self.bias and spec.bias:
+            return "bias=True but bias=False"
+        if not self.zero_batch and spec.batch == 0:
+            return "batch=0 but zero_batch=False"
+        if not self.output_padding and any(spec.output_padding):
+            return f"output_padding={spec.output_padding} but output_padding=False"
+        for kind in padding_kinds(spec):
+            if kind not in self.padding:
+                return f"{kind} padding {spec.padding} not in padding={sorted(self.padding)}"
+        if self.max_elements is not None:
+            import math
+            biggest = max(math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape))
+            if biggest > self.max_elements:
+                return f"an array of {biggest} elements exceeds max_elements={self.max_elements}"
+        return None
+
+    def admits(self, spec: ConvSpec) -> bool:
+        """Whether the adapter claims to compute ``spec`` correctly."""
+        return self.refusal(spec) is None
+
+    def replace(self, **changes) -> "Capabilities":
+        return replace(self, **changes)
+
+    def to_dict(self) -> dict:
+        d = {}
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if isinstance(v, frozenset):
+                v = sorted(v)
+            elif isinstance(v, ErrorModel):
+                v = v.to_dict()
+            elif f.name == "error_models":
+                v = {k: m.to_dict() for k, m in v}
+            d[f.name] = v
+        return d
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Capabilities":
+        known = {f.name for f in fields(cls)}
+        extra = sorted(set(d) - known)
+        if extra:
+            raise SpecError(f"Capabilities: unknown field(s) {extra}; known fields are {sorted(known)}")
+        kw = dict(d)
+        if isinstance(kw.get("error_model"), dict):
+            kw["error_model"] = ErrorModel.from_dict(kw["error_model"])
+        if isinstance(kw.get("error_models"), dict):
+            kw["error_models"] = tuple(sorted((k, ErrorModel.from_dict(v))
+                                              for k, v in kw["error_models"].items()))
+        return cls(**kw)
+
+    def summary(self) -> str:
+        """One line for ``convwitness adapters``."""
+        flags = [n for n in ("stride", "dilation", "groups", "bias") if getattr(self, n)]
+        return (f"{''.join(str(n) for n in sorted(self.ndims))}-D "
+                f"{','.join(sorted(self.dtypes, key=STORAGE_FORMATS.index))} "
+                f"{'/'.join(sorted(self.layouts))} pad={'+'.join(k for k in PADDING_KINDS if k in self.padding)} "
+                f"{'+'.join(flags)} passes={','.join(p for p in PASS_NAMES if p in self.passes)}")
+
+
+def padding_kinds(spec: ConvSpec) -> set[str]:
+    """The padding kinds a spec uses: symmetric, asymmetric, negative."""
+    kinds = set()
+    for lo, hi in spec.padding:
+        if lo < 0 or hi < 0:
+            kinds.add("negative")
+        if lo != hi:
+            kinds.add("asymmetric")
+        elif lo > 0:
+            kinds.add("symmetric")
+    return kinds

@@ -1,0 +1,161 @@
+"""The conformance report: a model, its JSON form and its schema.
+
+``report.json`` is validated against ``report.schema.json`` (JSON Schema draft
+2020-12, shipped in the package) before it is written; a report that fails its
+schema is never written silently.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import platform
+import sys
+from collections import Counter
+from importlib import metadata
+
+from ..errors import ConvWitnessError
+
+__all__ = ["REPORT_FORMAT", "build_report", "validate_report", "write_report", "load_report",
+           "schema", "library_versions", "ReportError"]
+
+REPORT_FORMAT = "convwitness-report/1"
+_LIBS = ("numpy", "hypothesis", "jsonschema", "torch", "jax", "jaxlib", "onnx", "onnxruntime",
+         "scipy", "ml_dtypes")
+
+
+class ReportError(ConvWitnessError):
+    """A report that does not satisfy its schema, or a file that is not a report."""
+
+
+def schema() -> dict:
+    path = os.path.join(os.path.dirname(__file__), "report.schema.json")
+    with open(path, encoding="utf-8") as fh:
+        return json.load(fh)
+
+
+def library_versions() -> dict:
+    out = {}
+    for name in _LIBS:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            continue
+    return out
+
+
+def _finite(x: float) -> float | None:
+    return None if x is None or x != x or x in (float("inf"), float("-inf")) else float(x)
+
+
+def _share(x: float):
+    """Shares may be infinite (a structural failure); JSON gets the string 'inf'."""
+    if x is None:
+        return None
+    if x == float("inf"):
+        return "inf"
+    return float(x)
+
+
+def result_to_dict(r) -> dict:
+    if isinstance(r, dict):
+        return r
+    return {
+        "id": r.id, "statement": r.statement, "property": r.property, "passes": list(r.passes),
+        "verdict": r.verdict, "informational": bool(r.informational),
+        "examples": int(r.examples), "geometries": int(r.geometries),
+        "worst_share": _share(r.worst_share), "worst_bound": r.worst_bound,
+        "shares": [_share(s) for s in r.shares],
+        "duration_s": round(float(r.duration_s), 6),
+        "examples_per_s": round(float(r.examples_per_s), 3),
+        "message": r.message, "reason": r.reason, "witness": r.witness,
+        "traceback": r.traceback, "output": r.output, "coverage": dict(r.coverage),
+    }
+
+
+def build_report(adapter, results, *, profile, seed, started: float, duration_s: float,
+                 shard: str | None = None, status: str = "complete") -> dict:
+    """The report document of a run (a dict ready for JSON)."""
+    invs = [result_to_dict(r) for r in results]
+    counts = Counter(r["verdict"] for r in invs)
+    deciding = [r for r in invs if not r["informational"]]
+    conformant = bool(deciding) and all(r["verdict"] in ("pass", "not-applicable") for r in deciding) \
+        and any(r["verdict"] == "pass" for r in deciding) and status == "complete"
+    coverage: Counter = Counter()
+    for r in invs:
+        coverage.update(r["coverage"])
+    cov = {}
+    for key, n in sorted(coverage.items()):
+        feat, _, value = key.partition("=")
+        cov.setdefault(feat, {})[value] = n
+    caps = adapter.capabilities
+    return {
+        "format": REPORT_FORMAT,
+        "tool": {"name": "convwitness", "version": _tool_version()},
+        "status": status,
+        "conformant": conformant,
+        "adapter": {"name": adapter.name, "version": adapter.version, "source": adapter.source,
+                    "capabilities": caps.to_dict()},
+        "environment": {"python": sys.version.split()[0], "platform": platform.platform(),
+                        "libraries": library_versions()},
+        "profile": profile.to_dict(),
+        "seed": seed,
+        "shard": shard,
+        "started": _dt.datetime.fromtimestamp(started, _dt.timezone.utc).isoformat(),
+        "duration_s": round(float(duration_s), 3),
+        "summary": {v: counts.get(v, 0) for v in
+                    ("pass", "fail", "error", "crash", "timeout", "not-applicable", "unavailable")},
+        "invariants": invs,
+        "coverage": cov,
+    }
+
+
+def _tool_version() -> str:
+    from .. import __version__
+    return __version__
+
+
+def validate_report(doc: dict) -> None:
+    """Raise ReportError naming the first schema violation (path and reason)."""
+    import jsonschema
+    validator = jsonschema.Draft202012Validator(schema())
+    errors = sorted(validator.iter_errors(doc), key=lambda e: list(e.absolute_path))
+    if errors:
+        e = errors[0]
+        where = "/".join(str(p) for p in e.absolute_path) or "(top level)"
+        raise ReportError(f"report fails its schema at {where}: {e.message} "
+                          f"({len(errors)} violation(s) in all); this is a convwitness bug or a "
+                          "hand-edited report — regenerate it with `convwitness run`")
+
+
+def write_report(doc: dict, report_dir: str) -> str:
+    """Validate, then write ``report_dir/report.json`` atomically; returns the path."""
+    validate_report(doc)
+    os.makedirs(report_dir, exist_ok=True)
+    path = os.path.join(report_dir, "report.json")
+    tmp = path + ".tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh, indent=2, sort_keys=False)
+        fh.write("\n")
+    os.replace(tmp, path)
+    return path
+
+
+def load_report(path: str) -> dict:
+    """Read and validate a report.json (a clear error for anything else)."""
+    try:
+        with open(path, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except FileNotFoundError:
+        raise ReportError(f"report {path!r} does not exist; `convwitness run --report DIR` writes "
+                          "DIR/report.json") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise ReportError(f"report {path!r} is not valid JSON ({exc}); expected the report.json "
+                          "that `convwitness run --report DIR` writes (a truncated file can be "
+                          "rebuilt from its journal: `convwitness rebuild DIR`)") from None
+    if not isinstance(doc, dict) or doc.get("format") != REPORT_FORMAT:
+        got = doc.get("format") if isinstance(doc, dict) else type(doc).__name__
+        raise ReportError(f"{path!r}: expected a report of format {REPORT_FORMAT!r}, got {got!r}; "
+                          "give the report.json that `convwitness run --report DIR` writes")
+    validate_report(doc)
+    return doc

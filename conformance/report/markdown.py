@@ -1,0 +1,83 @@
+"""``summary.md``: a short summary of a report, sized for a pull-request comment.
+
+The verdict and counts on top, then a table of what went wrong (each with its
+minimal geometry and replay command), then every invariant folded away in a
+``<details>`` block. Strings from the report are escaped so that an adapter's name
+or message cannot inject markup or break a table.
+"""
+from __future__ import annotations
+
+import re
+
+from .outputs import FAILING, headline, label, share_text
+
+__all__ = ["render", "md_text", "md_code"]
+
+_SPECIAL = re.compile(r"([\\`*_\[\]|~])")
+_MARK = {"CONFORMANT": "✅", "NOT CONFORMANT": "❌", "PARTIAL": "⏸"}
+
+
+def md_text(value) -> str:
+    """Plain text safe inside Markdown (and a table cell): HTML escaped, specials backslashed."""
+    s = str(value).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+    s = _SPECIAL.sub(r"\\\1", s)
+    return " ".join(s.split())
+
+
+def md_code(value) -> str:
+    """An inline code span that holds ``value`` whatever backticks it contains."""
+    s = " ".join(str(value).split()).replace("|", "\\|")
+    runs = [len(m) for m in re.findall(r"`+", s)]
+    fence = "`" * (max(runs) + 1 if runs else 1)
+    pad = " " if s.startswith("`") or s.endswith("`") else ""
+    return f"{fence}{pad}{s}{pad}{fence}"
+
+
+def _block(value) -> str:
+    s = str(value)
+    runs = [len(m) for m in re.findall(r"`{3,}", s)]
+    fence = "`" * (max(runs) + 1 if runs else 3)
+    return f"{fence}text\n{s}\n{fence}"
+
+
+def render(doc: dict, report_dir: str | None = None) -> str:
+    a, s = doc["adapter"], doc["summary"]
+    head = headline(doc)
+    counts = ", ".join(f"{n} {k}" for k, n in s.items() if n) or "nothing ran"
+    lines = [f"### {_MARK.get(head, '')} convwitness: {head} — {md_text(a['name'])} {md_text(a['version'])}",
+             "",
+             f"{len(doc['invariants'])} invariants: {counts} · profile {md_text(doc['profile'].get('name', '?'))}"
+             f" · seed {doc['seed']} · {doc['duration_s']:.1f} s"
+             + (f" · status {doc['status']}" + (f" (shard {md_text(doc['shard'])})" if doc.get("shard") else "")
+                if doc["status"] != "complete" else ""),
+             ""]
+    bad = [r for r in doc["invariants"] if r["verdict"] in FAILING]
+    if bad:
+        lines += ["| invariant | verdict | worst share | minimal case |", "|---|---|---|---|"]
+        for r in bad:
+            w = r["witness"]
+            case = f"{md_code(w['geometry'])} ({md_text(w['kind'])})" if w else "–"
+            lines.append(f"| {md_code(r['id'])} | {md_text(label(r))} | {share_text(r['worst_share'])} | {case} |")
+        lines.append("")
+        for r in bad:
+            if not r["message"] and not r["witness"]:
+                continue
+            lines.append(f"<details><summary>{md_text(r['id'])}: {md_text(label(r))}</summary>")
+            lines.append("")
+            if r["message"]:
+                lines += [_block(r["message"]), ""]
+            if r["witness"] and r["witness"].get("replay"):
+                lines += ["Replay:", "", _block(r["witness"]["replay"]), ""]
+            lines += ["</details>", ""]
+    else:
+        lines += ["Every applicable invariant passed." if doc["conformant"] else
+                  "No invariant failed, but the run does not certify the adapter (see the report).", ""]
+    lines += ["<details><summary>All invariants</summary>", "",
+              "| invariant | verdict | examples | worst share | examples/s |", "|---|---|---:|---:|---:|"]
+    for r in doc["invariants"]:
+        lines.append(f"| {md_code(r['id'])} | {md_text(label(r))} | {r['examples']} | "
+                     f"{share_text(r['worst_share'])} | {r['examples_per_s']:.0f} |")
+    lines += ["", "</details>", "",
+              f"<sub>convwitness {md_text(doc['tool']['version'])} · adapter {md_code(a['source'])} · "
+              "full report in report.html</sub>", ""]
+    return "\n".join(lines)

@@ -1,0 +1,61 @@
+"""One certification run: every selected invariant on one adapter, into a report."""
+from __future__ import annotations
+
+import os
+import time
+from typing import Callable
+
+from ..cases.profiles import get_profile
+from ..report.document import build_report, write_report
+from .runner import InvariantResult, run_invariant, select
+
+__all__ = ["certify"]
+
+
+def certify(adapter, *, profile="quick", only: str | None = None, seed: int | None = 0,
+            report_dir: str | None = None, progress: Callable | None = None,
+            shrink: bool = True, shard: str | None = None, replay_hint: str = "",
+            journal=None, work=None):
+    """Run the suite; returns (report document, results). Writes the report when
+    ``report_dir`` is given. ``progress(event, payload)`` is told of each step.
+    ``work`` optionally filters the selected invariants (sharding)."""
+    profile = get_profile(profile)
+    chosen = select(adapter.capabilities, only)
+    if work is not None:
+        chosen = work(chosen)
+    own_journal = False
+    if report_dir:
+        os.makedirs(report_dir, exist_ok=True)
+        if journal is None:
+            from .journal import Journal
+            journal = Journal.open(report_dir, adapter, profile, seed,
+                                   planned=[inv.id for inv, _ in chosen], shard=shard)
+            own_journal = True
+    started = time.time()
+    t0 = time.perf_counter()
+    results: list[InvariantResult] = []
+    status = "complete"
+    try:
+        for i, (inv, refusal) in enumerate(chosen):
+            if progress:
+                progress("start", {"index": i, "total": len(chosen), "id": inv.id})
+            res = run_invariant(adapter, inv, profile, seed=seed, report_dir=report_dir,
+                                refusal=refusal, shrink=shrink, replay_hint=replay_hint)
+            results.append(res)
+            if journal is not None:
+                journal.append(res)
+            if progress:
+                progress("done", {"index": i, "total": len(chosen), "result": res,
+                                  "elapsed": time.perf_counter() - t0})
+    except KeyboardInterrupt:
+        status = "partial"
+        if progress:
+            progress("interrupted", {"done": len(results), "total": len(chosen)})
+    if own_journal:
+        journal.close()
+    doc = build_report(adapter, results, profile=profile, seed=seed, started=started,
+                       duration_s=time.perf_counter() - t0, shard=shard,
+                       status="partial" if shard else status)
+    if report_dir:
+        write_report(doc, report_dir)
+    return doc, results

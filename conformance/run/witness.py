@@ -1,0 +1,64 @@
+"""Witnesses: the minimal failing case of an invariant, saved and replayed.
+
+A witness is ``witnesses/<invariant id>.npz`` + ``.json`` inside the report folder.
+The JSON holds the spec, the value kind and seed (auxiliary data of an invariant is
+derived from that seed, so a replay needs nothing but these two files), the
+invariant, the verdict and message, and the command that replays it.
+"""
+from __future__ import annotations
+
+import os
+import shlex
+
+from ..cases.case import load_case
+from ..errors import (AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterTimeout,
+                     CaseFileError)
+from ..invariants.evidence import Evidence
+
+__all__ = ["write_witness", "replay"]
+
+
+def write_witness(case, *, invariant: str, verdict: str, message: str, report_dir: str,
+                  seed, adapter_source: str, replay_hint: str = "") -> dict:
+    folder = os.path.join(report_dir, "witnesses")
+    base = os.path.join(folder, invariant)
+    npz, meta = case.save(base, invariant=invariant, verdict=verdict, message=message,
+                          run_seed=seed, adapter=adapter_source)
+    rel = os.path.relpath(meta)
+    command = f"convwitness replay {shlex.quote(rel)} --adapter {shlex.quote(adapter_source or 'ADAPTER')}"
+    if replay_hint:
+        command += f" {replay_hint}"
+    return {"path": os.path.relpath(meta, report_dir), "arrays": os.path.relpath(npz, report_dir),
+            "spec": case.spec.to_dict(), "geometry": case.spec.describe(), "kind": case.kind,
+            "replay": command}
+
+
+def replay(path: str, adapter, invariant_id: str | None = None):
+    """Re-run the invariant of a witness on ``adapter`` without hypothesis.
+
+    Returns (verdict, Evidence-or-None, message, meta).
+    """
+    from ..invariants import Context, get
+    case, meta = load_case(path)
+    inv_id = invariant_id or meta.get("invariant")
+    if not inv_id:
+        raise CaseFileError(f"witness {path!r} names no invariant; pass --invariant ID")
+    inv = get(inv_id)
+    refusal = inv.refusal(adapter.capabilities)
+    if refusal:
+        return "not-applicable", None, f"{inv_id} does not apply to {adapter.name}: {refusal}", meta
+    if not adapter.capabilities.admits(case.spec):
+        return ("not-applicable", None,
+                f"{adapter.name} does not claim this geometry: {adapter.capabilities.refusal(case.spec)}",
+                meta)
+    try:
+        ev: Evidence = inv.check(adapter, case, Context())
+    except AdapterOutputError as exc:
+        return "fail", None, str(exc), meta
+    except AdapterRaised as exc:
+        return "error", None, f"{exc}\n{exc.traceback_text}", meta
+    except AdapterCrashed as exc:
+        return "crash", None, str(exc), meta
+    except AdapterTimeout as exc:
+        return "timeout", None, str(exc), meta
+    return ("pass" if ev.ok else "fail"), ev, ev.message, meta
