@@ -349,7 +349,7 @@ def test_bad_commands_fail_the_load_in_one_line(tmp_path):
 
 
 def test_memory_limit_stops_a_hungry_program(tmp_path):
-    from convwitness.boundary.wire.client import parse_bytes
+    from convwitness.boundary.limits import parse_bytes
     assert parse_bytes("4GiB") == 4 << 30 and parse_bytes("512M") == 512 << 20
     assert parse_bytes(1024) == 1024 and parse_bytes(None) is None
     script = tmp_path / "broken.py"

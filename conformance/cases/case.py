@@ -57,12 +57,6 @@ class Case:
     def arrays(self) -> dict:
         return {n: getattr(self, n) for n in _ARRAYS if getattr(self, n) is not None}
 
-    def with_arrays(self, **arrays) -> "Case":
-        data = {n: getattr(self, n) for n in _ARRAYS}
-        data.update(arrays)
-        return Case(self.spec, data["x"], data["w"], data["b"], data["grad_y"], self.kind,
-                    self.seed, self.note)
-
     # -- files -------------------------------------------------------------------------
     def save(self, base: str, **extra) -> tuple[str, str]:
         """Write ``base.npz`` and ``base.json``; returns both paths."""

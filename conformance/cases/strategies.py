@@ -20,7 +20,7 @@ then kept small enough for the profile's element budget).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from hypothesis import assume, strategies as st
 
@@ -64,7 +64,6 @@ class Needs:
     dtypes: tuple | None = None
     ndims: tuple | None = None
     features: tuple | None = None
-    extra: dict = field(default_factory=dict, compare=False, hash=False)
 
     def __post_init__(self):
         bad = [k for k in self.kinds if k not in KINDS]

@@ -36,6 +36,26 @@ SPECIAL_KINDS = ("nan", "inf", "subnormal")
 KINDS = NUMERIC_KINDS + SPECIAL_KINDS
 
 
+#: The salts of auxiliary random data, one per purpose, in one table: an invariant draws
+#: ``aux_rng(case.seed, SALTS[purpose])`` so that its extra data are replayable from the
+#: case alone and no two purposes share a stream. Never renumber (witnesses replay them).
+SALTS = {
+    "input_second": 11,        # forward.input_linearity: the second input x2
+    "input_scale": 12,         # forward.input_linearity: the power of two 2^k
+    "weight_second": 21,       # forward.weight_linearity: the second weight w2
+    "weight_scale": 22,        # forward.weight_linearity: the power of two 2^k
+    "shift_axis": 31,          # forward.shift_equivariance: axis and fill of the shift
+    "batch_sample": 41,        # forward.batch_independence: sample kept, others redrawn
+    "state_forward": 51,       # forward.repeatability: the other geometry B of A, B, A
+    "state_backward": 52,      # backward.repeatability: the other geometry B of A, B, A
+    "zero_batch_warmup": 61,   # backward.zero_batch: the N = 1 call before N = 0
+    "upstream_second": 71,     # backward.upstream_linearity: the second upstream gradient
+    "upstream_scale": 72,      # backward.upstream_linearity: the power of two 2^k
+    "fd_input": 81,            # backward.finite_differences: direction in x
+    "fd_weight": 82,           # backward.finite_differences: direction in w
+}
+
+
 def aux_rng(seed: int, salt: int = 0) -> np.random.Generator:
     """The generator an invariant uses for auxiliary data (replayable from the case)."""
     return np.random.default_rng([int(seed) & 0xFFFFFFFF, salt])

@@ -60,15 +60,11 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _memory(text: str) -> int:
-    units = {"k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}
-    t = text.strip().lower().removesuffix("ib").removesuffix("b")
+    from ..boundary.limits import parse_bytes
     try:
-        if t and t[-1] in units:
-            return int(float(t[:-1]) * units[t[-1]])
-        return int(t)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"--memory-limit {text!r}: expected bytes or a size like "
-                                         "512MiB or 4GiB") from None
+        return parse_bytes(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(f"--memory-limit {exc}") from None
 
 
 def _isolation_options(p):

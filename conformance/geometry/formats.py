@@ -100,6 +100,19 @@ def numpy_dtype(name: str) -> np.dtype:
     return np.dtype(getattr(ml_dtypes, name))
 
 
+def dtype_by_name(name: str) -> np.dtype:
+    """The numpy dtype called ``name``: numpy's own names, then ml_dtypes' (bfloat16,
+    float8_e4m3fn, ...). TypeError when neither knows the name."""
+    try:
+        return np.dtype(name)
+    except TypeError:
+        try:
+            import ml_dtypes
+            return np.dtype(getattr(ml_dtypes, name))
+        except (ImportError, AttributeError, TypeError):
+            raise TypeError(f"no numpy or ml_dtypes dtype is called {name!r}") from None
+
+
 def available(name: str) -> bool:
     """Whether the named storage format can be used on this machine."""
     try:

@@ -47,11 +47,6 @@ class Evidence:
     checked: int = 0
     details: dict = field(default_factory=dict)
 
-    def raise_if_failed(self):
-        if not self.ok:
-            raise InvariantFailure(self)
-        return self
-
 
 def combine(*items: "Evidence") -> Evidence:
     """Combine several measurements of one example: fails if any fails; worst share wins."""
@@ -123,7 +118,7 @@ def compare(actual, expected, bound, *, what: str, criterion: str, explanation: 
         msg = f"{head}: {n} elements of {what}, worst share of bound {worst_share:.3g}"
         nfree = int(np.asarray(free).sum())
         if nfree:
-            msg += f" ({nfree} element(s) not judged: {allow_reason(free)})"
+            msg += f" ({nfree} element(s) not judged: {NOT_JUDGED})"
         return Evidence(True, err, float(bnd.flat[worst_flat]), worst_share, where, msg, n)
     lines = [head]
     lines.append("  structure: " + ("; ".join(structural) if structural else "ok (shape, dtype, finiteness)"))
@@ -141,5 +136,5 @@ def compare(actual, expected, bound, *, what: str, criterion: str, explanation: 
     return Evidence(False, err, float(bnd.flat[worst_flat]), worst_share, where, "\n".join(lines), n)
 
 
-def allow_reason(free) -> str:
-    return "intermediate overflow possible"
+#: why an element is left unjudged (the ``allow`` mask of :func:`compare`)
+NOT_JUDGED = "intermediate overflow possible"

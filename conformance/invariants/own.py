@@ -22,9 +22,9 @@ from .evidence import Evidence, compare, combine
 from ..geometry.formats import get_format, to_format
 from ..geometry.spec import ConvSpec
 from ..cases.strategies import Needs
-from ..cases.values import NUMERIC_KINDS, aux_rng
+from ..cases.values import NUMERIC_KINDS, SALTS, aux_rng
 from . import invariant
-from ._common import overflow_free, pass_bound, run_forward
+from ._common import overflow_possible, pass_bound, run_forward
 from .backward import _backward, _two_sum
 
 # near_max data make the float64 inner products (or the weight gradient's N*prod(L_out)
@@ -64,7 +64,7 @@ def _dot(a, b) -> tuple[float, float]:
 
 
 def _overflow(spec, adapter, *bounds) -> bool:
-    return any(bool(overflow_free(spec, adapter, b).any()) for b in bounds)
+    return any(bool(overflow_possible(spec, adapter, b).any()) for b in bounds)
 
 
 def _scalar(actual, expected, tol, *, what, criterion, explanation):
@@ -137,12 +137,12 @@ def weight_correlation(adapter, case, ctx):
         _, bound = pass_bound(adapter, derived, "forward", {"x": xd, "w": wd})
         got.append(arrange(y).astype(np.float64))
         tol.append(arrange(bound.values))
-        free.append(arrange(overflow_free(derived, adapter, bound)))
+        free.append(arrange(overflow_possible(derived, adapter, bound)))
     corr = _from_cf(np.concatenate(got), spec.layout)
     gw = _backward(adapter, spec, case.x, case.w, case.b, case.grad_y)[1]
     _, bgw = pass_bound(adapter, spec, "grad_weight", {"x": case.x, "grad_y": case.grad_y})
     return compare(gw, corr, bgw.values + _from_cf(np.concatenate(tol), spec.layout), what="grad_w",
-                   allow=overflow_free(spec, adapter, bgw) | _from_cf(np.concatenate(free), spec.layout),
+                   allow=overflow_possible(spec, adapter, bgw) | _from_cf(np.concatenate(free), spec.layout),
                    criterion=f"weight correlation: grad_w == own forward of x with g (stride "
                              f"{spec.dilation}, dilation {spec.stride}) within B_GW + B_f'",
                    explanation=bgw.explain())
@@ -194,7 +194,7 @@ def input_transposed(adapter, case, ctx):
     gx = _backward(adapter, spec, case.x, case.w, case.b, case.grad_y)[0]
     _, bgi = pass_bound(adapter, spec, "grad_input", {"w": case.w, "grad_y": case.grad_y})
     return compare(gx, back(z.astype(np.float64)), bgi.values + back(bz.values), what="grad_x",
-                   allow=overflow_free(spec, adapter, bgi) | back(overflow_free(derived, adapter, bz)),
+                   allow=overflow_possible(spec, adapter, bgi) | back(overflow_possible(derived, adapter, bz)),
                    criterion="input gradient as a transposed convolution by the own forward: "
                              "|grad_x - crop(f(dilated, padded g, flipped w))| <= B_GI + B_f'",
                    explanation=bgi.explain())
@@ -279,4 +279,5 @@ def finite_difference(adapter, case, ctx):
     arrays = {"x": case.x, "w": case.w, "grad_y": case.grad_y}
     _, bgx = pass_bound(adapter, spec, "grad_input", arrays)
     _, bgw = pass_bound(adapter, spec, "grad_weight", arrays)
-    return combine(_fd(adapter, case, "x", gx, bgx, 81), _fd(adapter, case, "w", gw, bgw, 82))
+    return combine(_fd(adapter, case, "x", gx, bgx, SALTS["fd_input"]),
+                   _fd(adapter, case, "w", gw, bgw, SALTS["fd_weight"]))

@@ -14,7 +14,7 @@ from ..errors import AdapterOutputError
 from .evidence import Evidence, compare
 from ..cases.strategies import Needs
 from . import invariant
-from ._common import copies, judge, overflow_free, pass_bound, run_forward
+from ._common import copies, judge, overflow_possible, pass_bound, run_forward
 
 
 def _relationship_14(spec) -> tuple[int, ...]:
@@ -52,7 +52,7 @@ def contract(adapter, case, ctx):
                 f"transposed contract: y shares memory with {name}; expected a fresh array "
                 "(return a new array, not a view of an input or of a reused buffer)"))
     expected, bound = _expected(adapter, spec, case.x, case.w, case.b)
-    bad = np.isfinite(expected) & ~overflow_free(spec, adapter, bound) & ~np.isfinite(y1.astype(np.float64))
+    bad = np.isfinite(expected) & ~overflow_possible(spec, adapter, bound) & ~np.isfinite(y1.astype(np.float64))
     if bad.any():
         first = [int(i) for i in np.argwhere(bad)[0]]
         return Evidence(False, share=np.inf, where=tuple(first), message=(
@@ -109,7 +109,7 @@ def matches_grad_input(adapter, case, ctx):
     _, bt = _expected(adapter, spec, case.x, case.w, None)
     _, bgi = pass_bound(adapter, conv, "grad_input", {"w": case.w, "grad_y": gy})
     return compare(y, gx.astype(np.float64), bt.values + bgi.values, what="y",
-                   allow=overflow_free(spec, adapter, bt) | overflow_free(conv, adapter, bgi),
+                   allow=overflow_possible(spec, adapter, bt) | overflow_possible(conv, adapter, bgi),
                    criterion="transposed == input gradient of the matching convolution, "
                              "within B_T + B_GI",
                    explanation=bt.explain())

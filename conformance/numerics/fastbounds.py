@@ -94,7 +94,6 @@ def _fast_bound(spec, model, pass_: str, x, w, b, reference):
                           f"{pass_!r} needs a direct model (declare it in Capabilities.error_models "
                           "or offer no such pass)")
     u = get_format(m.accumulate).u
-    ref_abs = np.abs(np.asarray(reference, dtype=np.float64))
     if m.algorithm == "winograd":
         tile = model.tile or 2
         if tile not in WINOGRAD:
@@ -115,7 +114,7 @@ def _fast_bound(spec, model, pass_: str, x, w, b, reference):
         # underflow: each of the N roundings may err by one smallest subnormal, carried
         # through the later stages with at most the coefficients' and weights' magnitudes
         wmax = max(1.0, float(np.abs(np.asarray(w, dtype=np.float64)).max(initial=0.0)))
-        unit = ConvSpecLike(spec)
+        unit = _unit_batch_channels_first(spec)
         ones = winograd_conv(unit, np.ones(unit.x_shape), np.full(unit.w_shape, wmax), tile,
                              absolute=True)
         under = N * get_format(m.accumulate).smallest_subnormal * float(ones.max(initial=0.0))
@@ -154,8 +153,9 @@ def _fast_bound(spec, model, pass_: str, x, w, b, reference):
             f"pair, plus γ_{Cg - 1} over channels")
 
 
-def ConvSpecLike(spec):
-    """The spec in channels-first layout with batch 1 and one group of channels kept."""
+def _unit_batch_channels_first(spec):
+    """The spec with batch 1, channels first and no bias (all channels and groups kept):
+    the geometry on which the underflow carry of one tile is measured."""
     return spec.replace(batch=1, layout="channels_first", bias=False)
 
 

@@ -44,10 +44,6 @@ def library_versions() -> dict:
     return out
 
 
-def _finite(x: float) -> float | None:
-    return None if x is None or x != x or x in (float("inf"), float("-inf")) else float(x)
-
-
 def _share(x: float):
     """Shares may be infinite (a structural failure); JSON gets the string 'inf'."""
     if x is None:

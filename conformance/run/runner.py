@@ -26,9 +26,8 @@ from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
 from ..cases.features import feature_of
 
-__all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "VERDICTS", "BudgetExhausted"]
+__all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted"]
 
-VERDICTS = ("pass", "fail", "error", "crash", "timeout", "not-applicable", "unavailable")
 MAX_SHARES = 400
 
 

@@ -19,6 +19,8 @@ import uuid
 
 import numpy as np
 
+from ...geometry.formats import dtype_by_name
+
 __all__ = ["Arena", "pack", "unpack", "Foreign", "describe_foreign", "copy_keeping_strides"]
 
 _ALIGN = 64
@@ -173,11 +175,7 @@ def _code(dt: np.dtype) -> str:
 
 
 def _dtype(code: str) -> np.dtype:
-    try:
-        return np.dtype(code)
-    except TypeError:
-        from ...geometry.formats import numpy_dtype
-        return numpy_dtype(code)
+    return dtype_by_name(code)
 
 
 def unpack(arena: Arena, header, copy: bool = True) -> list:

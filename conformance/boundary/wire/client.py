@@ -33,10 +33,11 @@ import numpy as np
 from ...geometry.capabilities import Capabilities
 from ...errors import (AdapterCrashed, AdapterLoadError, AdapterOutputError, AdapterRaised,
                      AdapterTimeout, ConvWitnessError)
+from ..limits import parse_bytes
 from .codec import (PROTOCOL, Reader, Region, WireEOF, WireFormatError, WireTimeout,
                          encode, read_message, write_all)
 
-__all__ = ["ExecAdapter", "parse_bytes"]
+__all__ = ["ExecAdapter"]
 
 _PIPE_SIZE = 1 << 20          # F_SETPIPE_SZ: fewer wake-ups for large inline arrays
 _F_SETPIPE_SZ = 1031
@@ -50,21 +51,6 @@ class _Failure(Exception):
     def __init__(self, cls, message, traceback_text=""):
         super().__init__(message)
         self.cls, self.traceback_text = cls, traceback_text
-
-
-def parse_bytes(value) -> int | None:
-    """512, "512M", "4GiB", "2g" -> bytes (None stays None)."""
-    if value is None or isinstance(value, int):
-        return value
-    if isinstance(value, float):
-        return int(value)
-    text = str(value).strip().lower().removesuffix("b").removesuffix("i")
-    scale = {"k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}.get(text[-1:], 1)
-    try:
-        return int(float(text[:-1] if scale > 1 else text) * scale)
-    except ValueError:
-        raise AdapterLoadError(f"memory_limit={value!r}: expected bytes as an int or a size such "
-                               "as '512M' or '4GiB'") from None
 
 
 class _State:
@@ -126,7 +112,10 @@ class ExecAdapter:
                 raise AdapterLoadError(f"exec: {name}={v!r} must be a positive number of seconds")
         self.command = command if isinstance(command, str) else shlex.join(command)
         self.call_timeout, self.start_timeout = float(call_timeout), float(start_timeout)
-        self.memory_limit = parse_bytes(memory_limit)
+        try:
+            self.memory_limit = parse_bytes(memory_limit)
+        except ValueError as exc:
+            raise AdapterLoadError(f"memory_limit={exc}") from None
         self.shared_memory, self.env, self.cwd = shared_memory, env, cwd
         self.max_output, self.region_limit = max_output, region_limit
         self._state = _State()

@@ -16,6 +16,7 @@ from functools import lru_cache
 
 import numpy as np
 
+from ...geometry.formats import dtype_by_name
 from .transport import Reader, Region, WireEOF, WireFormatError, WireTimeout, a_bytes, write_all
 
 __all__ = ["PROTOCOL", "MAGIC", "PREFIX", "MAX_HEADER", "WireFormatError", "WireEOF",
@@ -33,13 +34,9 @@ MAX_HEADER = 16 << 20          # a header longer than 16 MiB is taken for garbag
 def dtype_of(name: str) -> np.dtype:
     """The little-endian numpy dtype called ``name`` on the wire (KeyError if unknown)."""
     try:
-        dt = np.dtype(name) if isinstance(name, str) and name else None
+        dt = dtype_by_name(name) if isinstance(name, str) and name else None
     except TypeError:
-        try:
-            import ml_dtypes
-            dt = np.dtype(getattr(ml_dtypes, name))
-        except (ImportError, AttributeError, TypeError):
-            dt = None
+        dt = None
     if dt is None or dt.name != name or dt.kind not in "biufcV" or dt.fields or dt.subdtype:
         raise KeyError(name)
     return dt.newbyteorder("<") if dt.itemsize > 1 else dt
