@@ -10,7 +10,8 @@ from ..numerics.bounds import Bound, derive
 from .evidence import Evidence, compare
 from ..geometry.formats import get_format
 
-__all__ = ["copies", "model_of", "pass_bound", "judge", "run_forward", "overflow_possible", "self_bound"]
+__all__ = ["copies", "model_of", "pass_bound", "judge", "run_forward", "overflow_possible", "self_bound",
+           "check_output_contract"]
 
 
 def copies(case):
@@ -99,3 +100,36 @@ def self_bound(adapter, spec, x, w, b=None, y_hat=None) -> Bound:
         values = np.maximum(bound.values, bound.coefficient * mag + bound.u_out * big + bound.absolute)
     return replace(bound, values=values, magnitude=mag,
                    explanation=bound.explanation + "; magnitudes also from the adapter's own |x|,|w| pass")
+
+
+def check_output_contract(adapter, case, *, label: str, shape: tuple | None = None):
+    """The output contract of one pass (forward or transposed, after ``case.spec``): the
+    expected ``shape`` when given, a fresh array (no memory shared with x, w, b or an
+    earlier result), finite wherever the exact result is finite and far from overflow."""
+    from ..errors import AdapterOutputError
+    spec = case.spec
+    call = adapter.transposed if spec.transposed else adapter.run
+    x, w, b, _ = copies(case)
+    try:
+        y1 = call(spec, x, w, b)
+        y2 = call(spec, x.copy(), w.copy(), None if b is None else b.copy())
+    except AdapterOutputError as exc:
+        return Evidence(False, share=np.inf, message=f"{label}: {exc}")
+    if shape is not None and y1.shape != shape:
+        return Evidence(False, share=np.inf, message=(
+            f"{label}: y has shape {y1.shape}, expected {shape}"))
+    for name, arr, other in (("x", x, y1), ("w", w, y1), ("b", b, y1), ("the previous call's y", y1, y2)):
+        if arr is not None and np.shares_memory(other, arr):
+            return Evidence(False, share=np.inf, message=(
+                f"{label}: y shares memory with {name}; expected a fresh array "
+                "(return a new array, not a view of an input or of a reused buffer)"))
+    expected, bound = pass_bound(adapter, spec, "transposed" if spec.transposed else "forward",
+                                 {"x": case.x, "w": case.w, "b": case.b})
+    bad = np.isfinite(expected) & ~overflow_possible(spec, adapter, bound) & ~np.isfinite(y1.astype(np.float64))
+    if bad.any():
+        first = [int(i) for i in np.argwhere(bad)[0]]
+        return Evidence(False, share=np.inf, where=tuple(first), message=(
+            f"{label}: {int(bad.sum())} of {bad.size} elements of y are not finite where the "
+            f"exact result is finite and far from overflow; first at {first}"))
+    return Evidence(True, message=f"{label}: shape {y1.shape}, dtype {y1.dtype}, fresh, finite",
+                    checked=y1.size)

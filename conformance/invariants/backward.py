@@ -16,6 +16,7 @@ from ..geometry.formats import get_format, to_format
 from ..cases.strategies import Needs
 from ..cases.values import SALTS, aux_rng
 from . import invariant
+from ._linear import power_of_two, products_stay_normal, second_operand
 from ._common import judge, model_of, overflow_possible, pass_bound
 
 GRADS = (("grad_x", "grad_input"), ("grad_w", "grad_weight"), ("grad_b", "grad_bias"))
@@ -121,19 +122,6 @@ def _two_sum(a, b):
     return s, e
 
 
-def _second(case, salt: int) -> np.ndarray:
-    """A second upstream gradient of a kind like the case's, representable in the dtype."""
-    rng = aux_rng(case.seed, salt)
-    shape = case.grad_y.shape
-    if case.kind in ("ones", "one_hot", "small_int"):
-        v = rng.integers(-3, 4, size=shape).astype(np.float64)
-    elif case.kind == "pow2":
-        v = rng.choice([-1.0, 1.0], size=shape) * np.exp2(rng.integers(-4, 5, size=shape))
-    else:
-        v = rng.uniform(-1, 1, size=shape)
-    return to_format(v, case.spec.dtype).astype(case.grad_y.dtype)
-
-
 def _free(adapter, spec, *bounds):
     out = None
     for bd in bounds:
@@ -146,7 +134,7 @@ def _additivity(adapter, case, g1):
     """GI(g3) = GI(g1) + GI(g2) + GI(g3 - g1 - g2) exactly (and GW, GB), with g3 = fl(g1 + g2)."""
     spec, x, w, b = case.spec, case.x, case.w, case.b
     dt = g1.dtype
-    g2 = _second(case, SALTS["upstream_second"])
+    g2 = second_operand(case, g1, SALTS["upstream_second"])
     s, e = _two_sum(g1.astype(np.float64), g2.astype(np.float64))
     g3 = to_format(s, spec.dtype).astype(dt)
     # g3 - (g1 + g2) = (g3 - s) - e, both parts exact in float64 (the rounding error of a
@@ -191,22 +179,12 @@ def _additivity(adapter, case, g1):
     return results
 
 
-def _products_safe(adapter, spec, a, g, k: int) -> bool:
-    """No product a*g, scaled by 2^k, falls below the normal range of the formats used."""
-    m = model_of(adapter, spec).resolve(spec.dtype)
-    tiny = max(get_format(m.product).tiny, get_format(m.accumulate).tiny)
-    aa, ag = np.abs(a.astype(np.float64)), np.abs(g.astype(np.float64))
-    na, ng = aa[aa > 0], ag[ag > 0]
-    return not (na.size and ng.size and na.min() * ng.min() * 2.0 ** min(k, 0) < 4 * tiny)
-
-
 def _homogeneity(adapter, case, g1, base):
     """GI(2^k g) == 2^k GI(g) (and GW, GB) bit for bit when no product or result leaves the
     normal range; within B(2^k g) + 2^k B(g) for an adapter not claiming determinism."""
     spec, x, w, b = case.spec, case.x, case.w, case.b
     fmt = get_format(spec.dtype)
-    rng = aux_rng(case.seed, SALTS["upstream_scale"])
-    k = int(rng.choice([1, 2, 3, -1, -2]))
+    k = power_of_two(case, SALTS["upstream_scale"])
     m = model_of(adapter, spec).resolve(spec.dtype)
     top = min(get_format(m.accumulate).max, get_format(m.output).max, fmt.max)
     biggest = max((bd[1].magnitude.max(initial=0) for bd in base.values()), default=0.0)
@@ -217,7 +195,7 @@ def _homogeneity(adapter, case, g1, base):
     gs = to_format(exact, spec.dtype)
     if not np.array_equal(gs.astype(np.float64), exact):
         return [Evidence(True, message=f"homogeneity: 2^{k}·g is not exact in {spec.dtype}, skipped")]
-    if not (_products_safe(adapter, spec, w, g1, k) and _products_safe(adapter, spec, x, g1, k)):
+    if not (products_stay_normal(adapter, spec, w, g1, k) and products_stay_normal(adapter, spec, x, g1, k)):
         return [Evidence(True, message=f"homogeneity: products of 2^{k}·g would be subnormal, skipped")]
     got1 = _backward(adapter, spec, x, w, b, g1)
     gots = _backward(adapter, spec, x, w, b, gs.astype(g1.dtype))

@@ -5,13 +5,13 @@ from __future__ import annotations
 import numpy as np
 
 from ..numerics import reference as ref
-from ..errors import AdapterOutputError
-from .evidence import Evidence, compare, combine
+from .evidence import compare, combine
 from ..geometry.formats import get_format, to_format
 from ..cases.strategies import Needs
-from ..cases.values import EXACT_KINDS, SALTS, aux_rng
+from ..cases.values import EXACT_KINDS, SALTS
 from . import invariant
-from ._common import copies, judge, model_of, overflow_possible, pass_bound, run_forward, self_bound
+from ._linear import power_of_two, products_stay_normal, second_operand
+from ._common import check_output_contract, copies, judge, model_of, overflow_possible, pass_bound, run_forward, self_bound
 
 LINEAR_KINDS = ("small_int", "pow2", "uniform", "wide")
 
@@ -28,29 +28,7 @@ def output_contract(adapter, case, ctx):
     """shape(y) = (N, C_out, floor((L + p_lo + p_hi - d(k-1) - 1)/s) + 1, ...),
     dtype(y) = dtype(x); y shares no memory with x, w, b or an earlier y;
     |y_exact| + bound < max  =>  y finite."""
-    spec = case.spec
-    x, w, b, _ = copies(case)
-    try:
-        y1 = adapter.run(spec, x, w, b)
-        y2 = adapter.run(spec, x.copy(), w.copy(), None if b is None else b.copy())
-    except AdapterOutputError as exc:
-        return Evidence(False, message=f"output contract: {exc}", share=np.inf)
-    for name, arr in (("x", x), ("w", w), ("b", b), ("the previous call's y", y1)):
-        other = y2 if name.startswith("the") else y1
-        if arr is not None and np.shares_memory(other, arr):
-            return Evidence(False, share=np.inf, message=(
-                f"output contract: y shares memory with {name}; expected a fresh array "
-                "(return a new array, not a view of an input or of a reused buffer)"))
-    expected, bound = _expected(adapter, spec, case.x, case.w, case.b)
-    finite_required = np.isfinite(expected) & ~overflow_possible(spec, adapter, bound)
-    bad = finite_required & ~np.isfinite(y1.astype(np.float64))
-    if bad.any():
-        first = [int(i) for i in np.argwhere(bad)[0]]
-        return Evidence(False, share=np.inf, where=tuple(first), message=(
-            f"output contract: {int(bad.sum())} of {bad.size} elements of y are not finite where the "
-            f"exact result is finite and far from overflow; first at {first}"))
-    return Evidence(True, message=f"output contract: shape {y1.shape}, dtype {y1.dtype}, fresh, finite",
-                    checked=y1.size)
+    return check_output_contract(adapter, case, label="output contract")
 
 
 @invariant("forward.reference", steer=True, passes=("forward",),
@@ -92,37 +70,11 @@ def forward_exact(adapter, case, ctx):
     return ev
 
 
-def _second_input(case, name: str, salt: int):
-    """A second operand of the same kind, representable in the dtype."""
-    rng = aux_rng(case.seed, salt)
-    a = getattr(case, name)
-    kind = case.kind if case.kind in LINEAR_KINDS else "uniform"
-    if kind == "small_int":
-        v = rng.integers(-3, 4, size=a.shape).astype(np.float64)
-    elif kind == "pow2":
-        v = rng.choice([-1.0, 1.0], size=a.shape) * np.exp2(rng.integers(-4, 5, size=a.shape))
-    else:
-        v = rng.uniform(-1, 1, size=a.shape)
-    return to_format(v, case.spec.dtype)
-
-
-def _scaled_is_safe(spec, adapter, x, w, k: int) -> bool:
-    """Power-of-two scaling by 2^k commutes with every rounding: no product or result
-    leaves the normal range of the formats involved."""
-    m = model_of(adapter, spec).resolve(spec.dtype)
-    tiny = max(get_format(m.product).tiny, get_format(m.accumulate).tiny)
-    ax, aw = np.abs(x.astype(np.float64)), np.abs(w.astype(np.float64))
-    nzx, nzw = ax[ax > 0], aw[aw > 0]
-    if nzx.size and nzw.size and nzx.min() * nzw.min() * 2.0 ** min(k, 0) < 4 * tiny:
-        return False
-    return True
-
-
 def _linearity(adapter, case, name: str, purpose: str):
     spec = case.spec.replace(bias=False)
     x, w = case.x, case.w
     a1 = getattr(case, name)
-    a2 = _second_input(case, name, SALTS[f"{purpose}_second"])
+    a2 = second_operand(case, a1, SALTS[f"{purpose}_second"])
     s = (a1.astype(np.float64) + a2.astype(np.float64))
     a3 = to_format(s, spec.dtype)
     # The rounding error of a floating-point addition is itself representable (barring
@@ -155,14 +107,13 @@ def _linearity(adapter, case, name: str, purpose: str):
                   criterion=f"additivity in {name}: |f({name}1+{name}2) - f({name}1) - f({name}2)| <= "
                             "sum of the three bounds", explanation=b1.explain())
     # Homogeneity: f(2^k a) == 2^k f(a) bit for bit.
-    rng = aux_rng(case.seed, SALTS[f"{purpose}_scale"])
-    k = int(rng.choice([1, 2, 3, -1, -2]))
+    k = power_of_two(case, SALTS[f"{purpose}_scale"])
     top = min(get_format(model_of(adapter, spec).resolve(spec.dtype).accumulate).max,
               get_format(spec.dtype).max)
     if (b1.magnitude.size and b1.magnitude.max() * 2.0 ** max(k, 0) * 2 >= top) or \
             np.abs(a1.astype(np.float64)).max(initial=0) * 2.0 ** k >= get_format(spec.dtype).max:
         k = -1
-    if not _scaled_is_safe(spec, adapter, *args(a1), k):
+    if not products_stay_normal(adapter, spec, *args(a1), k):
         return add
     scaled = to_format(a1.astype(np.float64) * 2.0 ** k, spec.dtype)
     if not np.array_equal(scaled.astype(np.float64), a1.astype(np.float64) * 2.0 ** k):

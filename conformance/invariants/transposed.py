@@ -10,11 +10,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import AdapterOutputError
 from .evidence import Evidence, compare
 from ..cases.strategies import Needs
 from . import invariant
-from ._common import copies, judge, overflow_possible, pass_bound, run_forward
+from ._common import check_output_contract, copies, judge, overflow_possible, pass_bound, run_forward
 
 
 def _relationship_14(spec) -> tuple[int, ...]:
@@ -37,29 +36,10 @@ def contract(adapter, case, ctx):
     size = _relationship_14(spec)
     shape = (spec.batch, *size, spec.out_channels) if spec.layout == "channels_last" \
         else (spec.batch, spec.out_channels, *size)
-    x, w, b, _ = copies(case)
-    try:
-        y1 = adapter.transposed(spec, x, w, b)
-        y2 = adapter.transposed(spec, x.copy(), w.copy(), None if b is None else b.copy())
-    except AdapterOutputError as exc:
-        return Evidence(False, share=np.inf, message=f"transposed contract: {exc}")
-    if y1.shape != shape:
-        return Evidence(False, share=np.inf, message=(
-            f"transposed contract: y has shape {y1.shape}, Relationship 14 gives {shape}"))
-    for name, arr, other in (("x", x, y1), ("w", w, y1), ("b", b, y1), ("the previous call's y", y1, y2)):
-        if arr is not None and np.shares_memory(other, arr):
-            return Evidence(False, share=np.inf, message=(
-                f"transposed contract: y shares memory with {name}; expected a fresh array "
-                "(return a new array, not a view of an input or of a reused buffer)"))
-    expected, bound = _expected(adapter, spec, case.x, case.w, case.b)
-    bad = np.isfinite(expected) & ~overflow_possible(spec, adapter, bound) & ~np.isfinite(y1.astype(np.float64))
-    if bad.any():
-        first = [int(i) for i in np.argwhere(bad)[0]]
-        return Evidence(False, share=np.inf, where=tuple(first), message=(
-            f"transposed contract: {int(bad.sum())} of {bad.size} elements of y are not finite where "
-            f"the exact result is finite and far from overflow; first at {first}"))
-    return Evidence(True, checked=y1.size, message=(
-        f"transposed contract: shape {y1.shape} (Relationship 14), dtype {y1.dtype}, fresh, finite"))
+    ev = check_output_contract(adapter, case, label="transposed contract", shape=shape)
+    if ev.ok:
+        ev.message = ev.message.replace(f"shape {shape}", f"shape {shape} (Relationship 14)")
+    return ev
 
 
 @invariant("transposed.reference", steer=True, passes=("transposed",), needs=Needs(transposed=True),
