@@ -39,7 +39,7 @@ SCRATCH = (".hypothesis", "journal.jsonl")
 
 
 def convwitness(*args) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "convwitness.cli.main", *args], cwd=ROOT,
+    return subprocess.run([sys.executable, "-m", "convwitness", *args], cwd=ROOT,
                           capture_output=True, text=True)
 
 
