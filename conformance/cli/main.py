@@ -67,12 +67,25 @@ def _memory(text: str) -> int:
         raise argparse.ArgumentTypeError(f"--memory-limit {exc}") from None
 
 
+def _allowance(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        v = 0.0
+    if not 1.0 <= v < float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a finite factor >= 1 (e.g. 2), got {text!r}")
+    return v
+
+
 def _isolation_options(p):
     p.add_argument("--isolation", choices=("process", "none"), default="process",
                    help="run adapter calls in a worker process (default) or in-process (faster, "
                         "for debugging; a crash then ends the run)")
     p.add_argument("--call-timeout", type=float, default=None,
                    help="seconds per adapter call before it is killed (default: the profile's)")
+    p.add_argument("--first-call-allowance", type=_allowance, default=2.0, metavar="FACTOR",
+                   help="a call with a new signature (method, shapes, geometry) may take FACTOR x the "
+                        "call timeout, for ports that compile per shape (default 2; 1 for none)")
     p.add_argument("--memory-limit", type=_memory, default=None,
                    help="memory cap of the worker process (default 4GiB)")
 
@@ -117,7 +130,8 @@ def _load(args, profile=None):
     from ..boundary.isolation.client import load_isolated
     timeout = args.call_timeout or (profile.call_timeout if profile is not None else 60.0)
     return load_isolated(args.adapter, isolation=args.isolation, call_timeout=timeout,
-                         memory_limit=args.memory_limit)
+                         memory_limit=args.memory_limit,
+                         first_call_allowance=getattr(args, "first_call_allowance", 1.0))
 
 
 def cmd_run(args, stdout, stderr) -> int:

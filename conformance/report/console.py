@@ -32,7 +32,8 @@ class Progress:
             self.stream.write(("\r" if self.live else "") + line + ("\x1b[K\n" if self.live else "\n"))
             self.stream.flush()
         elif event == "interrupted":
-            self.stream.write(f"\ninterrupted after {payload['done']} of {payload['total']} invariants; "
+            self.stream.write(f"\ninterrupted ({payload.get('signal', 'SIGINT')}) after {payload['done']} of "
+                              f"{payload['total']} invariants; "
                               "writing a partial report\n")
             self.stream.flush()
 

@@ -66,7 +66,13 @@ def result_to_dict(r) -> dict:
         "examples_per_s": round(float(r.examples_per_s), 3),
         "message": r.message, "reason": r.reason, "witness": r.witness,
         "traceback": r.traceback, "output": r.output, "coverage": dict(r.coverage),
+        **({"same_cause_as": r.same_cause_as} if getattr(r, "same_cause_as", "") else {}),
     }
+
+
+def group_causes(invs):
+    from ..run.causes import group_causes as group
+    return group(invs)
 
 
 def build_report(adapter, results, *, profile, seed, started: float, duration_s: float,
@@ -102,6 +108,7 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
         "summary": {v: counts.get(v, 0) for v in
                     ("pass", "fail", "error", "crash", "timeout", "not-applicable", "unavailable")},
         "invariants": invs,
+        "causes": group_causes(invs),
         "coverage": cov,
     }
 

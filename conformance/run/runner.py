@@ -51,6 +51,7 @@ class InvariantResult:
     traceback: str = ""
     output: str = ""
     coverage: dict = field(default_factory=dict)
+    same_cause_as: str = ""      # the invariant whose timeout/crash witness reproduced here
 
     @property
     def counts(self) -> bool:
@@ -96,6 +97,13 @@ class BudgetExhausted(BaseException):
     A BaseException, so hypothesis stops instead of treating it as a failure."""
 
 
+class StopSearch(BaseException):
+    """Raised inside a hypothesis test to end the search at once, without shrinking:
+    after a call timed out (shrinking a hang costs a full timeout per try).
+
+    A BaseException, so hypothesis stops instead of treating it as a failure."""
+
+
 class _Tally:
     """What the test body saw: counts, shares, coverage and the last failing case."""
 
@@ -110,6 +118,7 @@ class _Tally:
         self.stopped = False
         self.vacuous = 0
         self.vacuous_why = ""
+        self.hung = False
 
     def record(self, case, ev: Evidence):
         share = float(ev.share)
@@ -144,7 +153,11 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
             tally.examples += 1
             try:
                 ev = inv.check(adapter, case, context)
-            except (AdapterRaised, AdapterOutputError, AdapterCrashed, AdapterTimeout) as exc:
+            except AdapterTimeout as exc:
+                tally.failure = (case, exc)
+                tally.hung = True
+                raise StopSearch(str(exc)) from None
+            except (AdapterRaised, AdapterOutputError, AdapterCrashed) as exc:
                 tally.failure = (case, exc)
                 raise
             except Exception as exc:
@@ -207,6 +220,8 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                 # not that repr, is what we keep
                 warnings.filterwarnings("ignore", message="Generating overly large repr")
                 test()
+        except StopSearch:
+            raise _failure_exception(tally.failure[1]) from None
         except BudgetExhausted:
             if tally.failure is None:
                 res.reason = (f"stopped at the time budget of {profile.budget_s:g} s after "
@@ -243,6 +258,9 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                       f"{tally.vacuous_why}").strip()
     if tally.stopped and tally.failure is not None:
         res.reason = f"shrinking stopped at the time budget of {profile.budget_s:g} s"
+    if tally.hung:
+        res.reason = ("not shrunk: the search stopped at the first call that hung (each try "
+                      "of a hang costs a full call timeout)")
     drain = getattr(adapter, "drain_output", None)
     if drain is not None:
         text = drain()

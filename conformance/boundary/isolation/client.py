@@ -30,6 +30,7 @@ import numpy as np
 from .arena import _DIR as _ARENA_DIR
 from .arena import Arena, pack, unpack
 from ...geometry.capabilities import Capabilities
+from ..calls import CallClock, call_signature
 from ..contract import Adapter
 from ...errors import AdapterCrashed, AdapterLoadError, AdapterRaised, AdapterTimeout, AdapterUnavailable
 
@@ -175,9 +176,13 @@ class ProcessAdapter:
     """Client side of an isolated adapter (used through contract.Adapter)."""
 
     def __init__(self, spec: str, *, call_timeout: float = 60.0, memory_limit: int | None = DEFAULT_MEMORY_LIMIT,
-                 start_timeout: float = 300.0):
+                 start_timeout: float = 300.0, first_call_allowance: float = 1.0):
         self.spec = spec
         self.call_timeout = float(call_timeout)
+        # the call clock (see boundary/calls.py): a new call signature may take
+        # first_call_allowance x call_timeout (ports that compile per shape); a call that
+        # hung once is never run again; probes run under a tighter limit
+        self.clock = CallClock(self.call_timeout, first_call_allowance)
         self.memory_limit = int(memory_limit) if memory_limit else 0
         self.start_timeout = start_timeout
         self.fork = _forkable(spec)
@@ -258,6 +263,8 @@ class ProcessAdapter:
         return call
 
     def _call(self, op, args, kwargs):
+        sig = call_signature(op, args, kwargs)
+        limit = self.clock.limit(sig)          # raises AdapterTimeout for a known hang
         self._ensure()
         header = pack(self.arena, list(args))
         w = self.worker
@@ -266,14 +273,14 @@ class ProcessAdapter:
                          "arena_size": self.arena.size, "kwargs": kwargs})
         except (BrokenPipeError, OSError):
             return self._crashed(op)
-        deadline = time.monotonic() + self.call_timeout
+        t_start = time.monotonic()
+        deadline = t_start + limit
         while True:
             left = deadline - time.monotonic()
             if left <= 0:
                 self._drop()
-                raise AdapterTimeout(f"adapter {self.name} {op} did not answer within "
-                                     f"{self.call_timeout:g} s (--call-timeout); the worker was "
-                                     "killed and will be replaced", self.drain_output())
+                raise AdapterTimeout(self.clock.hung(sig, f"adapter {self.name} {op}", limit),
+                                     self.drain_output())
             if w.conn.poll(min(left, 0.05)):
                 break
             if self.memory_limit and _rss(w.pid) > self.memory_limit:
@@ -285,6 +292,7 @@ class ProcessAdapter:
             msg = w.conn.recv()
         except (EOFError, OSError):
             return self._crashed(op)
+        self.clock.answered(sig, time.monotonic() - t_start)
         if "memory" in msg:
             raise AdapterCrashed(f"adapter {self.name} {op}: stopped at the memory limit of "
                                  f"{self.memory_limit / 2**30:.2f} GiB (--memory-limit): {msg['memory']}",
@@ -362,7 +370,7 @@ def _rss(pid: int) -> int:
 
 
 def load_isolated(spec: str, *, isolation: str = "process", call_timeout: float | None = None,
-                  memory_limit: int | None = None) -> Adapter:
+                  memory_limit: int | None = None, first_call_allowance: float = 1.0) -> Adapter:
     """An Adapter whose calls run in a worker process (``isolation="process"``) or in
     this process (``"none"``). ``exec:`` programs are already separate processes."""
     from ..loading import load_adapter
@@ -380,7 +388,8 @@ def load_isolated(spec: str, *, isolation: str = "process", call_timeout: float 
     if isolation == "none":
         return load_adapter(spec)
     target = ProcessAdapter(spec, call_timeout=call_timeout or 60.0,
-                            memory_limit=DEFAULT_MEMORY_LIMIT if memory_limit is None else memory_limit)
+                            memory_limit=DEFAULT_MEMORY_LIMIT if memory_limit is None else memory_limit,
+                            first_call_allowance=first_call_allowance)
     adapter = Adapter(target, source=spec)
     adapter.drain_output = target.drain_output
     adapter.close = target.close
