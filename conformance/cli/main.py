@@ -24,6 +24,8 @@ def _parser() -> argparse.ArgumentParser:
         "Certify a convolution-layer implementation against a float64 reference with "
         "derived rounding-error bounds. A passing report is evidence, not proof; an "
         "adapter runs arbitrary code, so run untrusted ports in a sandbox."))
+    from .. import __version__
+    p.add_argument("--version", action="version", version=f"convwitness {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
@@ -42,7 +44,8 @@ def _parser() -> argparse.ArgumentParser:
 
     rp = sub.add_parser("replay", help="re-run one witness without hypothesis")
     rp.add_argument("witness", help="a witness .json (or .npz) written by `run`")
-    rp.add_argument("--adapter", required=True)
+    rp.add_argument("--adapter", default=None,
+                    help="the adapter to replay on (default: the one the witness records)")
     rp.add_argument("--invariant", default=None, help="check another invariant on the witness case")
     _isolation_options(rp)
 
@@ -186,13 +189,23 @@ def _safe(name: str) -> str:
 
 
 def cmd_replay(args, stdout, stderr) -> int:
-    from ..run.witness import replay
+    from ..cases.case import load_case
+    from ..run.witness import describe_arrays, recorded_adapter, replay
+    case, meta = load_case(args.witness)
+    if args.adapter is None:
+        args.adapter = recorded_adapter(meta, args.witness)
     adapter = _load(args)
+    print(f"witness {args.witness}: {case.spec.describe()} ({case.kind}, seed {case.seed})", file=stdout)
+    print("\n".join(describe_arrays(case)), file=stdout)
     verdict, ev, message, meta = replay(args.witness, adapter, args.invariant)
-    print(f"{meta.get('invariant', args.invariant)} on {adapter.name}: {verdict}", file=stdout)
+    print(f"{args.invariant or meta.get('invariant')} on {adapter.name}: {verdict}", file=stdout)
     print(message, file=stdout)
-    if verdict in ("pass", "not-applicable"):
+    if verdict == "pass":
         return ExitCode.OK
+    if verdict == "not-applicable":
+        print("convwitness: nothing was checked: the adapter does not claim this witness; replay "
+              "it on an adapter that does (--adapter)", file=stderr)
+        return ExitCode.USAGE
     return ExitCode.FAILED
 
 

@@ -23,14 +23,46 @@ def write_witness(case, *, invariant: str, verdict: str, message: str, report_di
     folder = os.path.join(report_dir, "witnesses")
     base = os.path.join(folder, invariant)
     npz, meta = case.save(base, invariant=invariant, verdict=verdict, message=message,
-                          run_seed=seed, adapter=adapter_source)
+                          run_seed=seed, adapter=adapter_source, run_dir=os.getcwd())
     rel = os.path.relpath(meta)
-    command = f"convwitness replay {shlex.quote(rel)} --adapter {shlex.quote(adapter_source or 'ADAPTER')}"
+    # the witness records its adapter: no --adapter needed (give one to replay elsewhere)
+    command = f"convwitness replay {shlex.quote(rel)}"
+    if not adapter_source:
+        command += " --adapter ADAPTER"
     if replay_hint:
         command += f" {replay_hint}"
     return {"path": os.path.relpath(meta, report_dir), "arrays": os.path.relpath(npz, report_dir),
             "spec": case.spec.to_dict(), "geometry": case.spec.describe(), "kind": case.kind,
             "replay": command}
+
+
+def recorded_adapter(meta: dict, witness_path: str) -> str:
+    """The adapter spec a witness was found with, made to work from here: a file path
+    that does not exist relative to this directory is tried relative to the directory
+    the run started in (recorded as ``run_dir``)."""
+    spec = meta.get("adapter")
+    if not spec:
+        raise CaseFileError(f"witness {witness_path!r} records no adapter; pass --adapter SPEC")
+    if spec.startswith("exec:") or ".py:" not in spec:
+        return spec
+    file, _, attr = spec.rpartition(":")
+    run_dir = meta.get("run_dir")
+    if not os.path.isfile(file) and run_dir and os.path.isfile(os.path.join(run_dir, file)):
+        return f"{os.path.join(run_dir, file)}:{attr}"
+    return spec
+
+
+def describe_arrays(case) -> list[str]:
+    """One line per array of a case: name, shape, dtype, and its range."""
+    import numpy as np
+    lines = []
+    for name, a in case.arrays().items():
+        f = np.asarray(a, dtype=np.float64) if a.size else np.zeros(0)
+        finite = f[np.isfinite(f)]
+        rng = (f"min {finite.min():.6g} max {finite.max():.6g}" if finite.size else "no finite value")
+        extra = "" if finite.size == f.size else f", {f.size - finite.size} non-finite"
+        lines.append(f"  {name:7s} shape {tuple(a.shape)} {a.dtype}: {rng}{extra}")
+    return lines
 
 
 def replay(path: str, adapter, invariant_id: str | None = None):
