@@ -186,9 +186,18 @@ def test_objects_are_wrapped_directly():
 def test_unknown_name_did_you_mean():
     msg = _one_line_error("refrence")
     assert "unknown adapter 'refrence'" in msg and "did you mean 'reference'?" in msg
-    assert "package.module:attr" in msg and "path/to/file.py:attr" in msg
+    assert "package.module:attr" in msg and "path/to/file.py:attr" in msg and "exec:COMMAND" in msg
     msg = _one_line_error("qqqqqq")
     assert "did you mean" not in msg and "reference" in msg     # lists the built-ins
+
+
+def test_exec_program_without_hello_says_what_to_check():
+    """A program that never writes its hello (docs/wire-protocol.md: message 1)."""
+    with pytest.raises(AdapterLoadError) as info:
+        load_adapter(f"exec:{sys.executable} -c 'import time; time.sleep(60)'", start_timeout=2)
+    msg = str(info.value)
+    assert "\n" not in msg and "no complete hello within 2 s" in msg
+    assert "flushes stdout" in msg and "docs/wire-protocol.md" in msg
 
 
 def test_empty_spec():

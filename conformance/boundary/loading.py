@@ -54,7 +54,8 @@ def load_adapter(spec, **options) -> Adapter:
         hint = f"did you mean {' or '.join(repr(c) for c in close)}? " if close else ""
         raise AdapterLoadError(
             f"unknown adapter {text!r}: {hint}expected a built-in name ({', '.join(builtins)}), "
-            "package.module:attr or path/to/file.py:attr")
+            "package.module:attr, path/to/file.py:attr or exec:COMMAND ARGS (a program speaking "
+            "the wire protocol)")
     where, _, attr = text.rpartition(":")
     if not attr or not where:
         raise AdapterLoadError(f"adapter spec {text!r}: expected MODULE:ATTR or FILE.py:ATTR with both parts")

@@ -98,11 +98,12 @@ def special_values(adapter, case, ctx):
             "either skipped or 0*w)"))
     if differs:
         seen = "skip" if ok_skip else "multiply"
-        before = ctx.state.setdefault("padded_tap", seen)
+        before, where = ctx.state.setdefault("padded_tap", (seen, f"{spec.describe()} ({case.kind}, "
+                                                                 f"seed {case.seed})"))
         if before != seen:
             return Evidence(False, share=np.inf, message=(
-                f"special values: the padded-tap convention changed between shapes: earlier "
-                f"examples {before} padded taps, this one ({spec.describe()}) does {seen}"))
+                f"special values: the padded-tap convention changed between shapes: the example "
+                f"{where} set it to {before} padded taps; this one ({spec.describe()}) does {seen}"))
     finite = got == 0
     if finite.any():
         xs = np.where(np.isfinite(case.x.astype(np.float64)), case.x.astype(np.float64), 0.0)

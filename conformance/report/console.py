@@ -31,6 +31,10 @@ class Progress:
                     f"{r.duration_s:6.2f}s  (total {payload['elapsed']:.1f}s, {rate:.0f} ex/s)")
             self.stream.write(("\r" if self.live else "") + line + ("\x1b[K\n" if self.live else "\n"))
             self.stream.flush()
+        elif event == "heartbeat" and not self.live:
+            self.stream.write(f"  ... {payload['id']}: {payload['examples']} examples so far, "
+                              f"{payload['elapsed_invariant']:.0f} s\n")
+            self.stream.flush()
         elif event == "interrupted":
             self.stream.write(f"\ninterrupted ({payload.get('signal', 'SIGINT')}) after {payload['done']} of "
                               f"{payload['total']} invariants; "

@@ -197,7 +197,7 @@ def _verdict_of(exc) -> str:
 
 def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                   report_dir: str | None = None, refusal: str | None = None,
-                  shrink: bool = True, replay_hint: str = "") -> InvariantResult:
+                  shrink: bool = True, replay_hint: str = "", watch=None) -> InvariantResult:
     """Run one invariant; failures are shrunk by hypothesis and saved as a witness."""
     profile = get_profile(profile)
     caps = adapter.capabilities
@@ -209,6 +209,8 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         return res
     db = os.path.join(report_dir, ".hypothesis") if report_dir else None
     test, tally = hypothesis_test(adapter, inv, profile, seed, db, shrink=shrink)
+    if watch is not None:
+        watch.tally = tally          # the heartbeat reads the running count of examples
     t0 = time.perf_counter()
     try:
         try:

@@ -272,6 +272,12 @@ class ExecAdapter:
             return read_message(reader, region, region_free=free)
         except WireTimeout as exc:
             self._state.stop()
+            if request is None:          # the hello: the program never introduced itself
+                raise _Failure(AdapterTimeout, (
+                    f"the program sent no complete hello within {timeout:g} s ({exc}); it was "
+                    "killed. Check that it writes its hello to stdout at start (before reading "
+                    "anything), flushes stdout, and does not print anything else there; see "
+                    "docs/wire-protocol.md")) from None
             raise _Failure(AdapterTimeout, f"no complete reply to {what} within {timeout:g} s: "
                            f"{exc}; the program was killed and is restarted for the next "
                            "call") from None
