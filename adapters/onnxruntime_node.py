@@ -22,10 +22,11 @@ version 10) and run on the CPU execution provider:
   accumulation, one rounding to float16". Should a build register a float16 kernel,
   the model declared for float16 becomes accumulation in float16.
 * negative padding is not claimed: the ONNX operator spec allows only pads >= 0.
-* output_padding is passed on but not claimed: onnxruntime refuses
-  ``output_padding >= stride`` ("output_padding may be too large for stride"), which
-  is a valid geometry when ``dilation > output_padding``; Capabilities cannot yet
-  claim only ``output_padding < stride``.
+* output_padding is claimed below the stride only (constraint
+  ``output_padding<stride``): onnxruntime refuses ``output_padding >= stride``
+  ("output_padding may be too large for stride"), which is a valid geometry when
+  ``dilation > output_padding`` (seen with onnxruntime 1.32.0, CPU, Python 3.11:
+  ``python3 -m pytest tests/test_claims.py -k onnxruntime``).
 * a zero-length spatial axis (made valid by padding) is refused by onnxruntime's
   Conv ("Invalid input shape").
 """
@@ -94,10 +95,10 @@ class OnnxRuntimeAdapter:
             layouts=frozenset({"channels_first"}),
             padding=frozenset({"symmetric", "asymmetric"}),
             passes=frozenset({"forward", "transposed"}),
-            # output_padding is not claimed: onnxruntime rejects output_padding >= stride,
-            # which the geometry space allows when the dilation is larger (max(s, d) rule)
+            # onnxruntime rejects output_padding >= stride, which the geometry space
+            # allows when the dilation is larger (max(s, d) rule): claimed below the stride
             stride=True, dilation=True, groups=True, bias=True, zero_batch=True,
-            output_padding=False, deterministic=True,
+            output_padding=True, constraints=("output_padding<stride",), deterministic=True,
             error_model=ErrorModel(note="MLAS im2col + SGEMM, summed in float32"),
             error_models=tuple(sorted(models.items())),
         )

@@ -357,10 +357,13 @@ def test_adapter_modules_import_no_library():
 
 
 def test_onnxruntime_output_padding_reason():
-    """output_padding is not claimed: onnxruntime refuses output_padding >= stride (valid
-    when the dilation is larger), though output_padding < stride works."""
+    """output_padding is claimed below the stride only: onnxruntime refuses
+    output_padding >= stride (valid when the dilation is larger), though output_padding <
+    stride works."""
     adapter = load("onnxruntime")
-    assert not adapter.capabilities.output_padding
+    caps = adapter.capabilities
+    assert caps.output_padding and "output_padding<stride" in caps.constraints
+    assert caps.admits(TRANSPOSED[1]) and not caps.admits(TRANSPOSED[-1])
     works = TRANSPOSED[1]                          # output_padding 1 < stride 2
     x, w, b, _ = draw(works)
     got = adapter.target.transposed(x, w, b, stride=works.stride, padding=works.padding,

@@ -12,6 +12,7 @@ from typing import Mapping
 
 from ..numerics.bounds import ErrorModel
 from ..errors import SpecError
+from .claims import check_constraints, check_per_pass, constraint_refusal, merge_for_passes
 from .formats import STORAGE_FORMATS
 from .spec import LAYOUTS, ConvSpec
 
@@ -62,6 +63,9 @@ class Capabilities:
     max_elements: int | None = None
     error_model: ErrorModel = field(default_factory=ErrorModel)
     error_models: tuple = ()
+    #: claims that differ by pass and named constraints (geometry/claims.py)
+    per_pass: tuple = ()
+    constraints: tuple = ()
 
     def __post_init__(self):
         set_ = object.__setattr__
@@ -73,27 +77,36 @@ class Capabilities:
         em = self.error_models
         if isinstance(em, Mapping):
             em = tuple(sorted(em.items()))
-        passes = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
         for item in em:
             if not (isinstance(item, tuple) and len(item) == 2 and isinstance(item[1], ErrorModel)):
                 raise SpecError(f"Capabilities: error_models entry {item!r} must be "
                                 "(dtype or 'dtype/pass', ErrorModel)")
-            dt, _, ps = item[0].partition("/")
-            if dt not in STORAGE_FORMATS or (ps and ps not in passes):
-                raise SpecError(f"Capabilities: error_models key {item[0]!r}; expected a dtype "
-                                f"({', '.join(STORAGE_FORMATS)}) or 'dtype/pass' with pass in "
-                                f"{', '.join(passes)}")
+            _model_key(item[0])
         set_(self, "error_models", tuple(em))
+        set_(self, "constraints", check_constraints(self.constraints))
+        set_(self, "per_pass", check_per_pass(self.per_pass, PASS_NAMES))
         if not isinstance(self.error_model, ErrorModel):
             raise SpecError(f"Capabilities: error_model={self.error_model!r} must be an ErrorModel")
         if self.max_elements is not None and (not isinstance(self.max_elements, int) or self.max_elements < 1):
             raise SpecError(f"Capabilities: max_elements={self.max_elements!r} must be a positive int or None")
 
-    def error_model_for(self, dtype: str, pass_: str | None = None) -> ErrorModel:
+    def error_model_for(self, dtype: str, pass_: str | None = None,
+                        ndim: int | None = None) -> ErrorModel:
+        """The most specific entry: dtype/pass/Nd, dtype/pass, dtype/Nd, dtype, default."""
         table = dict(self.error_models)
-        if pass_ is not None and f"{dtype}/{pass_}" in table:
-            return table[f"{dtype}/{pass_}"]
-        return table.get(dtype, self.error_model)
+        nd = f"{ndim}d" if ndim else None
+        for key in (pass_ and nd and f"{dtype}/{pass_}/{nd}", pass_ and f"{dtype}/{pass_}",
+                    nd and f"{dtype}/{nd}", dtype):
+            if key and key in table:
+                return table[key]
+        return self.error_model
+
+    def for_passes(self, passes) -> "Capabilities":
+        """The claims shared by every pass in ``passes`` (per_pass applied, constraints
+        kept): what an invariant that calls those passes may be judged on."""
+        if not self.per_pass:
+            return self
+        return replace(self, **merge_for_passes(self, passes))
 
     def refusal(self, spec: ConvSpec) -> str | None:
         """Why the spec is outside the claimed space, or None when it is admitted."""
@@ -121,6 +134,15 @@ class Capabilities:
         for kind in padding_kinds(spec):
             if kind not in self.padding:
                 return f"{kind} padding {spec.padding} not in padding={sorted(self.padding)}"
+        if self.constraints:
+            why = constraint_refusal(self.constraints, spec)
+            if why:
+                return why
+        if self.per_pass:
+            pass_ = "transposed" if spec.transposed else "forward"
+            why = self.for_passes({pass_}).refusal(spec)
+            if why:
+                return f"{pass_} pass: {why}"
         if self.max_elements is not None:
             import math
             biggest = max(math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape))
@@ -145,6 +167,11 @@ class Capabilities:
                 v = v.to_dict()
             elif f.name == "error_models":
                 v = {k: m.to_dict() for k, m in v}
+            elif f.name == "per_pass":
+                v = {p: {k: (sorted(x, key=str) if isinstance(x, tuple) else x) for k, x in claims}
+                     for p, claims in v}
+            elif f.name == "constraints":
+                v = list(v)
             d[f.name] = v
         return d
 
@@ -169,6 +196,26 @@ class Capabilities:
                 f"{','.join(sorted(self.dtypes, key=STORAGE_FORMATS.index))} "
                 f"{'/'.join(sorted(self.layouts))} pad={'+'.join(k for k in PADDING_KINDS if k in self.padding)} "
                 f"{'+'.join(flags)} passes={','.join(p for p in PASS_NAMES if p in self.passes)}")
+
+
+_MODEL_PASSES = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
+
+
+def _model_key(key: str) -> None:
+    """Check an error_models key: dtype, then optionally a pass and/or an ndim (1d-3d)."""
+    parts = key.split("/") if isinstance(key, str) else [None]
+    dt, rest = parts[0], parts[1:]
+    ok = dt in STORAGE_FORMATS and len(rest) <= 2
+    if ok and rest:
+        nd_ok = rest[-1] in ("1d", "2d", "3d")
+        pass_part = rest[:-1] if nd_ok else rest
+        ok = len(pass_part) <= 1 and all(p in _MODEL_PASSES for p in pass_part) and \
+            (nd_ok or len(rest) == 1)
+    if not ok:
+        raise SpecError(f"Capabilities: error_models key {key!r}; expected a dtype "
+                        f"({', '.join(STORAGE_FORMATS)}), optionally followed by /PASS (one of "
+                        f"{', '.join(_MODEL_PASSES)}) and/or /1d, /2d or /3d, e.g. "
+                        "'float16/grad_input' or 'float32/forward/3d'")
 
 
 def padding_kinds(spec: ConvSpec) -> set[str]:

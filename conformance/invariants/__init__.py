@@ -63,8 +63,14 @@ class Invariant:
         """The property in maths (the function's docstring)."""
         return inspect.cleandoc(self.func.__doc__ or self.statement)
 
+    def claims(self, caps: Capabilities) -> Capabilities:
+        """The adapter's claims on every pass this invariant calls (per-pass claims
+        applied, geometry/claims.py): what its geometries are drawn from and judged on."""
+        return caps.for_passes(self.passes | ({"transposed"} if self.needs.transposed else set()))
+
     def refusal(self, caps: Capabilities) -> str | None:
         """Why this invariant does not apply to an adapter, or None."""
+        caps = self.claims(caps)
         missing = sorted(self.passes - caps.passes)
         if missing:
             return f"needs pass(es) {missing}, adapter offers {sorted(caps.passes)}"
@@ -76,11 +82,13 @@ class Invariant:
 
     def needs_for(self, caps: Capabilities) -> Needs:
         """The needs, adjusted to what the adapter can do (e.g. no dilation)."""
+        caps = self.claims(caps)
         return self.adjust(caps, self.needs) if self.adjust else self.needs
 
     def strategy(self, caps: Capabilities, profile: Profile):
         """The hypothesis strategy of this invariant's examples (tuples of Cases)."""
         from ..cases.strategies import examples
+        caps = self.claims(caps)
         if self.cases is not None:
             return self.cases(caps, get_profile(profile))
         return examples(caps, profile, self.needs_for(caps))

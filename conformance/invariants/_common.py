@@ -24,7 +24,7 @@ def model_of(adapter, spec, pass_: str | None = None):
     """The declared error model for the spec's dtype (and pass, where one is declared)."""
     if pass_ is None:
         pass_ = "transposed" if spec.transposed else "forward"
-    return adapter.capabilities.error_model_for(spec.dtype, pass_)
+    return adapter.capabilities.error_model_for(spec.dtype, pass_, spec.ndim)
 
 
 def pass_bound(adapter, spec, pass_: str, arrays: dict) -> tuple[np.ndarray, Bound]:

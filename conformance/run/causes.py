@@ -97,8 +97,8 @@ class KnownCauses:
             return False
         from ..invariants import Context
         clock = clock_of(adapter)
-        caps = adapter.capabilities
-        needs = inv.needs_for(caps)
+        caps = inv.claims(adapter.capabilities)
+        needs = inv.needs_for(adapter.capabilities)
         for cause in self.causes:
             spec = cause.spec
             if not caps.admits(spec) or not spec_meets(needs, spec):

@@ -79,10 +79,10 @@ def replay(path: str, adapter, invariant_id: str | None = None):
     refusal = inv.refusal(adapter.capabilities)
     if refusal:
         return "not-applicable", None, f"{inv_id} does not apply to {adapter.name}: {refusal}", meta
-    if not adapter.capabilities.admits(case.spec):
+    claims = inv.claims(adapter.capabilities)
+    if not claims.admits(case.spec):
         return ("not-applicable", None,
-                f"{adapter.name} does not claim this geometry: {adapter.capabilities.refusal(case.spec)}",
-                meta)
+                f"{adapter.name} does not claim this geometry: {claims.refusal(case.spec)}", meta)
     try:
         ev: Evidence = inv.check(adapter, case, Context())
     except AdapterOutputError as exc:
