@@ -110,3 +110,39 @@ def test_port_that_hangs_on_every_strided_call_is_judged_once_per_cause(tmp_path
     assert sorted(i for c in causes for i in c["invariants"]) == sorted(r["id"] for r in timeouts)
     for c in causes:
         assert "stride=strided" in c["signature"]
+
+
+def test_two_bugs_in_one_pass_are_both_reported_in_standard(tmp_path):
+    """Two planted bugs in the forward pass (grouped channels mixed; dilation ignored when
+    strided, zoo classes C03 and C04 of BUG-CLASSES.md): the search goes on after the first
+    with its region excluded, and both come out, each with its own replayable witness."""
+    report = tmp_path / "r"
+    proc = _run(["run", "--adapter", f"{PORTS}:TwoForwardBugs", "--report", str(report),
+                 "--profile", "standard", "--only", "forward.reference", "--isolation", "none",
+                 "--quiet"], tmp_path)
+    assert proc.returncode == 1, proc.stderr
+    doc = load_report(str(report / "report.json"))
+    r = doc["invariants"][0]
+    first = r["witness"]["spec"]
+    regions = [dict(groups="grouped" if first["groups"] > 1 else "single")]
+    regions += [f["region"] for f in r.get("further_causes", [])]
+    grouped = any(reg.get("groups") in ("grouped", "depthwise") for reg in regions)
+    dilated = any(reg.get("stride") == "strided" and reg.get("dilation") == "dilated"
+                  for reg in regions)
+    assert grouped and dilated, regions
+    for extra in r["further_causes"]:
+        assert os.path.isfile(report / extra["witness"]["path"])
+        # each further witness lies outside every region excluded before it
+        feats = extra["witness"]["spec"]
+        assert extra["excluded"] and extra["region"] not in extra["excluded"], feats
+    assert len(doc["causes"]) == 1 + len(r["further_causes"])
+    assert "cause 2" in proc.stdout
+
+
+def test_quick_profile_stops_at_the_first_cause(tmp_path):
+    report = tmp_path / "r"
+    _run(["run", "--adapter", f"{PORTS}:TwoForwardBugs", "--report", str(report), "--profile",
+          "quick", "--only", "forward.reference", "--isolation", "none", "--quiet"], tmp_path)
+    doc = load_report(str(report / "report.json"))
+    assert doc["invariants"][0]["verdict"] == "fail"
+    assert "further_causes" not in doc["invariants"][0]

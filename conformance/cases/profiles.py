@@ -32,6 +32,7 @@ class Profile:
     call_timeout: float      # seconds per adapter call under process isolation
     budget_s: float = 120.0  # wall-time budget of one invariant, shrinking included
     stress: bool = False     # long accumulations (nightly)
+    further_causes: int = 0  # after a failure, reruns with its region excluded (run/further.py)
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -49,11 +50,11 @@ PROFILES = {
         Profile("standard", examples=80, values=3, max_batch=4, max_channels=6, max_groups=4,
                 max_kernel=5, max_stride=4, max_dilation=3, max_padding=4,
                 max_spatial=(33, 17, 7), max_elements=32768, repeats=10, deadline_ms=None,
-                call_timeout=120.0, budget_s=600.0),
+                call_timeout=120.0, budget_s=600.0, further_causes=2),
         Profile("nightly", examples=300, values=4, max_batch=6, max_channels=9, max_groups=4,
                 max_kernel=7, max_stride=4, max_dilation=4, max_padding=5,
                 max_spatial=(65, 33, 11), max_elements=262144, repeats=20, deadline_ms=None,
-                call_timeout=300.0, budget_s=3600.0, stress=True),
+                call_timeout=300.0, budget_s=3600.0, stress=True, further_causes=3),
     )
 }
 

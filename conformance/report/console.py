@@ -74,4 +74,10 @@ def summary_table(doc: dict) -> str:
             lines.append(f"    minimal: {w['geometry']} ({w['kind']})")
             if w.get("replay"):
                 lines.append(f"    replay:  {w['replay']}")
+            for k, extra in enumerate(r.get("further_causes") or (), start=2):
+                fw = extra["witness"]
+                lines.append(f"    cause {k}: {extra['message'].splitlines()[0] if extra['message'] else extra['verdict']}")
+                lines.append(f"      minimal: {fw['geometry']} ({fw['kind']})")
+                if fw.get("replay"):
+                    lines.append(f"      replay:  {fw['replay']}")
     return "\n".join(lines)

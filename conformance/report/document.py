@@ -67,6 +67,7 @@ def result_to_dict(r) -> dict:
         "message": r.message, "reason": r.reason, "witness": r.witness,
         "traceback": r.traceback, "output": r.output, "coverage": dict(r.coverage),
         **({"same_cause_as": r.same_cause_as} if getattr(r, "same_cause_as", "") else {}),
+        **({"further_causes": list(r.further)} if getattr(r, "further", None) else {}),
     }
 
 

@@ -68,6 +68,12 @@ def render(doc: dict, report_dir: str | None = None) -> str:
                 lines += [_block(r["message"]), ""]
             if r["witness"] and r["witness"].get("replay"):
                 lines += ["Replay:", "", _block(r["witness"]["replay"]), ""]
+            for k, extra in enumerate(r.get("further_causes") or (), start=2):
+                fw = extra["witness"]
+                lines += [f"Cause {k} (searched with the earlier causes' regions excluded): "
+                          f"{md_text(fw.get('geometry', ''))}", "", _block(extra["message"]), ""]
+                if fw.get("replay"):
+                    lines += [_block(fw["replay"]), ""]
             lines += ["</details>", ""]
     else:
         lines += ["Every applicable invariant passed." if doc["conformant"] else

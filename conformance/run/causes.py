@@ -138,7 +138,13 @@ def group_causes(invariants: list[dict]) -> list[dict]:
     (ids, the one that found it first), witness (one)."""
     groups: dict[str, dict] = {}
     by_id: dict[str, str] = {}
+    entries = []
     for r in invariants:
+        entries.append(r)
+        for k, extra in enumerate(r.get("further_causes") or (), start=2):
+            entries.append(dict(extra, id=f"{r['id']} (cause {k})",
+                                informational=r.get("informational", False)))
+    for r in entries:
         if r.get("verdict") not in _FAILING or r.get("informational"):
             continue
         w = r.get("witness") or {}

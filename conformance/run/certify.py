@@ -9,6 +9,7 @@ from typing import Callable
 from ..cases.profiles import get_profile
 from ..report.document import build_report, write_report
 from .causes import KnownCauses
+from .further import search_further
 from .heartbeat import HEARTBEAT_S, Heartbeat
 from .signals import Terminated, as_interrupt
 from .runner import InvariantResult, run_invariant, select
@@ -60,6 +61,9 @@ def certify(adapter, *, profile="quick", only: str | None = None, seed: int | No
                 res = run_invariant(adapter, inv, profile, seed=seed, report_dir=report_dir,
                                     refusal=refusal, shrink=shrink, replay_hint=replay_hint,
                                     watch=beat)
+                res.further = search_further(adapter, inv, profile, res, seed=seed,
+                                             report_dir=report_dir, shrink=shrink,
+                                             replay_hint=replay_hint, run_invariant=run_invariant)
             if beat is not None:
                 beat.end()
             known.learn(res)

@@ -52,6 +52,7 @@ class InvariantResult:
     output: str = ""
     coverage: dict = field(default_factory=dict)
     same_cause_as: str = ""      # the invariant whose timeout/crash witness reproduced here
+    further: list = field(default_factory=list)   # further causes (run/further.py)
 
     @property
     def counts(self) -> bool:
@@ -130,7 +131,7 @@ class _Tally:
 
 def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
                     database_dir: str | None = None, tally: _Tally | None = None,
-                    context: Context | None = None, shrink: bool = True):
+                    context: Context | None = None, shrink: bool = True, exclude=None):
     """The hypothesis test of one invariant on one adapter (call it to run)."""
     tally = tally if tally is not None else _Tally()
     context = context or Context(profile=profile)
@@ -143,8 +144,10 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         elif now - tally.started > profile.budget_s:
             tally.stopped = True
             raise BudgetExhausted(f"{inv.id} used its budget of {profile.budget_s:g} s")
-        tally.geometries += 1
         spec = cases[0].spec
+        if exclude is not None and exclude(spec):
+            hypothesis.reject()        # a known cause's region (run/further.py)
+        tally.geometries += 1
         for k, v in feature_of(spec).items():
             tally.coverage[f"{k}={v}"] += 1
         worst = 0.0
@@ -197,7 +200,8 @@ def _verdict_of(exc) -> str:
 
 def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                   report_dir: str | None = None, refusal: str | None = None,
-                  shrink: bool = True, replay_hint: str = "", watch=None) -> InvariantResult:
+                  shrink: bool = True, replay_hint: str = "", watch=None, exclude=None,
+                  witness_name: str | None = None, database: bool = True) -> InvariantResult:
     """Run one invariant; failures are shrunk by hypothesis and saved as a witness."""
     profile = get_profile(profile)
     caps = adapter.capabilities
@@ -207,8 +211,8 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     if refusal:
         res.verdict, res.reason = "not-applicable", refusal
         return res
-    db = os.path.join(report_dir, ".hypothesis") if report_dir else None
-    test, tally = hypothesis_test(adapter, inv, profile, seed, db, shrink=shrink)
+    db = os.path.join(report_dir, ".hypothesis") if report_dir and database else None
+    test, tally = hypothesis_test(adapter, inv, profile, seed, db, shrink=shrink, exclude=exclude)
     if watch is not None:
         watch.tally = tally          # the heartbeat reads the running count of examples
     t0 = time.perf_counter()
@@ -279,15 +283,16 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         if isinstance(what, Evidence):
             res.worst_share = max(res.worst_share, float(what.share))
         if report_dir:
-            res.witness = save_witness(case, inv, res, report_dir, seed, adapter, replay_hint)
+            res.witness = save_witness(case, inv, res, report_dir, seed, adapter, replay_hint,
+                                       name=witness_name)
         else:
             res.witness = {"spec": case.spec.to_dict(), "geometry": case.spec.describe(),
                            "kind": case.kind}
     return res
 
 
-def save_witness(case, inv, res, report_dir, seed, adapter, replay_hint) -> dict:
+def save_witness(case, inv, res, report_dir, seed, adapter, replay_hint, name=None) -> dict:
     from .witness import write_witness
     return write_witness(case, invariant=inv.id, verdict=res.verdict, message=res.message,
                          report_dir=report_dir, seed=seed, adapter_source=adapter.source,
-                         replay_hint=replay_hint)
+                         replay_hint=replay_hint, name=name)

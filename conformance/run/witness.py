@@ -19,9 +19,9 @@ __all__ = ["write_witness", "replay"]
 
 
 def write_witness(case, *, invariant: str, verdict: str, message: str, report_dir: str,
-                  seed, adapter_source: str, replay_hint: str = "") -> dict:
+                  seed, adapter_source: str, replay_hint: str = "", name: str | None = None) -> dict:
     folder = os.path.join(report_dir, "witnesses")
-    base = os.path.join(folder, invariant)
+    base = os.path.join(folder, name or invariant)
     npz, meta = case.save(base, invariant=invariant, verdict=verdict, message=message,
                           run_seed=seed, adapter=adapter_source, run_dir=os.getcwd())
     rel = os.path.relpath(meta)
