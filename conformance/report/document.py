@@ -60,6 +60,7 @@ def result_to_dict(r) -> dict:
         "id": r.id, "statement": r.statement, "property": r.property, "passes": list(r.passes),
         "verdict": r.verdict, "informational": bool(r.informational),
         "examples": int(r.examples), "geometries": int(r.geometries),
+        "skipped": int(r.skipped), "skip_reasons": list(r.skip_reasons),
         "worst_share": _share(r.worst_share), "worst_bound": r.worst_bound,
         "shares": [_share(s) for s in r.shares],
         "duration_s": round(float(r.duration_s), 6),
