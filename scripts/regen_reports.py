@@ -87,18 +87,9 @@ def folder_of(adapter: str) -> str:
 
 
 def counts(doc: dict) -> str:
-    """Verdict counts, information-only failures counted apart."""
-    info = sum(r["verdict"] in ("fail", "error", "crash", "timeout") and r["informational"]
-               for r in doc["invariants"])
-    parts = []
-    for k, n in doc["summary"].items():
-        if k in ("fail", "error", "crash", "timeout"):
-            n -= sum(r["verdict"] == k and r["informational"] for r in doc["invariants"])
-        if n:
-            parts.append(f"{n} {k}")
-    if info:
-        parts.append(f"{info} information only")
-    return ", ".join(parts)
+    """Verdict counts, as every view prints them (convwitness.report.verdicts.judge)."""
+    from convwitness.report.verdicts import judge
+    return judge(doc).counts_text()
 
 
 def screenshot(html: str, png: str) -> bool:
@@ -132,7 +123,9 @@ def index(rows: list[tuple[str, dict]]) -> str:
     for rel, doc in rows:
         where = os.path.relpath(os.path.join(ROOT, rel), REPORTS)
         s = counts(doc)
-        verdict = "conformant" if doc["conformant"] else "**not conformant**"
+        from convwitness.report.verdicts import judge
+        head = judge(doc).headline.lower()
+        verdict = head if head == "conformant" else f"**{head}**"
         lines.append(f"| `{where}` | {doc['adapter']['name']} {doc['adapter']['version']} | {verdict} | {s} | "
                      f"[html]({where}/report.html) · [md]({where}/summary.md) · [junit]({where}/junit.xml) |")
     lines += ["", "Regression diff of the demo releases: [_demo/diff-0.3.0-to-0.3.1.md](_demo/diff-0.3.0-to-0.3.1.md);",

@@ -304,7 +304,9 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     if res.verdict in DECIDING_FAILURES + ("internal",) and tally.failure is not None:
         case, what = tally.failure
         if isinstance(what, Evidence):
-            res.worst_share = max(res.worst_share, float(what.share))
+            # the share of the minimal case, the one the message and the witness show
+            res.worst_share = float(what.share)
+            res.worst_bound = what.message.splitlines()[0] if what.message else res.worst_bound
         if report_dir:
             res.witness = save_witness(case, inv, res, report_dir, seed, adapter, replay_hint)
         else:
