@@ -61,6 +61,8 @@ def summary_table(doc: dict) -> str:
              if i not in dict(j.not_applicable)]
     if skips:
         lines += ["skipped examples (not counted as checked):"] + skips
+    if j.blocking or j.info:
+        lines.append("minimal cases:")
     for r in doc["invariants"]:
         if r["id"] in j.blocking or r["id"] in j.info:
             first = r["message"].splitlines()[0] if r["message"] else r["verdict"]
