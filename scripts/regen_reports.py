@@ -64,7 +64,7 @@ def regen_run(rel: str, adapter: str, profile: str, seed: int) -> dict | None:
         shutil.rmtree(folder)
     res = convwitness("run", "--adapter", adapter, "--profile", profile, "--seed", str(seed),
                       "--report", rel, "--quiet")
-    if res.returncode not in (0, 1):
+    if res.returncode not in (0, 1, 5):     # CONFORMANT, NOT CONFORMANT, NOTHING CERTIFIED
         raise SystemExit(f"regen: `convwitness run --adapter {adapter}` failed: {res.stderr.strip()}")
     for name in SCRATCH:
         path = os.path.join(folder, name)
@@ -74,7 +74,8 @@ def regen_run(rel: str, adapter: str, profile: str, seed: int) -> dict | None:
             os.remove(path)
     with open(os.path.join(folder, "report.json"), encoding="utf-8") as fh:
         doc = json.load(fh)
-    print(f"  {rel}: {'conformant' if doc['conformant'] else 'NOT conformant'} ({counts(doc)})")
+    from convwitness.report.verdicts import judge
+    print(f"  {rel}: {judge(doc).headline} ({counts(doc)})")
     return doc
 
 
@@ -159,7 +160,7 @@ def main(argv=None) -> int:
         rows.append((f"reports/_demo/{folder}", doc))
     old, new = (os.path.join("reports", "_demo", f, "report.json") for f, _ in DEMOS)
     res = convwitness("diff", old, new, "--format", "markdown")
-    if res.returncode not in (0, 1):
+    if res.returncode not in (0, 1, 5):     # CONFORMANT, NOT CONFORMANT, NOTHING CERTIFIED
         raise SystemExit(f"regen: convwitness diff failed: {res.stderr.strip()}")
     with open(os.path.join(REPORTS, "_demo", "diff-0.3.0-to-0.3.1.md"), "w", encoding="utf-8") as fh:
         fh.write(res.stdout)
