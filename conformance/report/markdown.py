@@ -57,6 +57,11 @@ def render(doc: dict, report_dir: str | None = None) -> str:
                   f"({len(j.not_applicable)})</summary>", ""]
         lines += [f"- {md_code(i)}: {md_text(why)}" for i, why in j.not_applicable]
         lines += ["", "</details>", ""]
+    skips = [(i, n, why) for i, (n, why) in j.skipped.items() if i not in dict(j.not_applicable)]
+    if skips:
+        lines += [f"<details><summary>Skipped examples, not counted ({len(skips)} invariants)</summary>", ""]
+        lines += [f"- {md_code(i)}: {n}, commonest reason: {md_text(why)}" for i, n, why in skips]
+        lines += ["", "</details>", ""]
     bad = [r for r in doc["invariants"] if r["id"] in j.blocking or r["id"] in j.info]
     if bad:
         lines += ["| invariant | verdict | worst share | minimal case |", "|---|---|---|---|"]
