@@ -64,7 +64,7 @@ def regen_run(rel: str, adapter: str, profile: str, seed: int) -> dict | None:
         shutil.rmtree(folder)
     res = convwitness("run", "--adapter", adapter, "--profile", profile, "--seed", str(seed),
                       "--report", rel, "--quiet")
-    if res.returncode not in (0, 1):
+    if res.returncode not in (0, 1, 5):     # CONFORMANT, NOT CONFORMANT, NOTHING CERTIFIED
         raise SystemExit(f"regen: `convwitness run --adapter {adapter}` failed: {res.stderr.strip()}")
     for name in SCRATCH:
         path = os.path.join(folder, name)
@@ -74,7 +74,8 @@ def regen_run(rel: str, adapter: str, profile: str, seed: int) -> dict | None:
             os.remove(path)
     with open(os.path.join(folder, "report.json"), encoding="utf-8") as fh:
         doc = json.load(fh)
-    print(f"  {rel}: {'conformant' if doc['conformant'] else 'NOT conformant'} ({counts(doc)})")
+    from convwitness.report.verdicts import judge
+    print(f"  {rel}: {judge(doc).headline} ({counts(doc)})")
     return doc
 
 
@@ -87,18 +88,9 @@ def folder_of(adapter: str) -> str:
 
 
 def counts(doc: dict) -> str:
-    """Verdict counts, information-only failures counted apart."""
-    info = sum(r["verdict"] in ("fail", "error", "crash", "timeout") and r["informational"]
-               for r in doc["invariants"])
-    parts = []
-    for k, n in doc["summary"].items():
-        if k in ("fail", "error", "crash", "timeout"):
-            n -= sum(r["verdict"] == k and r["informational"] for r in doc["invariants"])
-        if n:
-            parts.append(f"{n} {k}")
-    if info:
-        parts.append(f"{info} information only")
-    return ", ".join(parts)
+    """Verdict counts, as every view prints them (convwitness.report.verdicts.judge)."""
+    from convwitness.report.verdicts import judge
+    return judge(doc).counts_text()
 
 
 def screenshot(html: str, png: str) -> bool:
@@ -132,7 +124,9 @@ def index(rows: list[tuple[str, dict]]) -> str:
     for rel, doc in rows:
         where = os.path.relpath(os.path.join(ROOT, rel), REPORTS)
         s = counts(doc)
-        verdict = "conformant" if doc["conformant"] else "**not conformant**"
+        from convwitness.report.verdicts import judge
+        head = judge(doc).headline.lower()
+        verdict = head if head == "conformant" else f"**{head}**"
         lines.append(f"| `{where}` | {doc['adapter']['name']} {doc['adapter']['version']} | {verdict} | {s} | "
                      f"[html]({where}/report.html) · [md]({where}/summary.md) · [junit]({where}/junit.xml) |")
     lines += ["", "Regression diff of the demo releases: [_demo/diff-0.3.0-to-0.3.1.md](_demo/diff-0.3.0-to-0.3.1.md);",
@@ -166,7 +160,7 @@ def main(argv=None) -> int:
         rows.append((f"reports/_demo/{folder}", doc))
     old, new = (os.path.join("reports", "_demo", f, "report.json") for f, _ in DEMOS)
     res = convwitness("diff", old, new, "--format", "markdown")
-    if res.returncode not in (0, 1):
+    if res.returncode not in (0, 1, 5):     # CONFORMANT, NOT CONFORMANT, NOTHING CERTIFIED
         raise SystemExit(f"regen: convwitness diff failed: {res.stderr.strip()}")
     with open(os.path.join(REPORTS, "_demo", "diff-0.3.0-to-0.3.1.md"), "w", encoding="utf-8") as fh:
         fh.write(res.stdout)

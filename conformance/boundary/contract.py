@@ -90,13 +90,14 @@ class Adapter:
         if callable(caps) and not isinstance(caps, Capabilities):
             caps = caps()
         if caps is None:
-            caps = Capabilities(passes=frozenset(offered))
+            caps = Capabilities()
         elif isinstance(caps, dict):
             caps = Capabilities.from_dict(caps)
         elif not isinstance(caps, Capabilities):
             raise AdapterLoadError(
                 f"adapter {self.name}: capabilities must be a convwitness.Capabilities (or a dict "
                 f"of its fields), got {_describe(caps)}; fix: build it with Capabilities(...)")
+        caps = caps.for_methods(offered)     # passes=None: what the object implements
         missing = sorted(caps.passes - offered)
         if missing:
             raise AdapterLoadError(

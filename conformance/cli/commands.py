@@ -39,16 +39,17 @@ def extend_run(r: argparse.ArgumentParser) -> None:
 
 def extend_sub(sub) -> None:
     d = sub.add_parser("diff", help="compare two reports (nightly regression): exit 1 when anything regressed")
-    d.add_argument("old", metavar="OLD.json")
-    d.add_argument("new", metavar="NEW.json")
+    d.add_argument("old", metavar="OLD", help="a report.json or the report folder holding it")
+    d.add_argument("new", metavar="NEW", help="a report.json or the report folder holding it")
     d.add_argument("--format", choices=("text", "markdown", "json"), default="text")
     d.add_argument("--drift", type=_drift_arg, default=0.25, metavar="SHARE",
                    help="flag a passing invariant whose worst share of the bound grew by more than "
                         "this (absolute, default 0.25)")
 
     m = sub.add_parser("merge", help="join the shard reports of one run into one report")
-    m.add_argument("reports", nargs="+", metavar="SHARD.json")
-    m.add_argument("-o", "--output", required=True, metavar="MERGED.json")
+    m.add_argument("reports", nargs="+", metavar="SHARD", help="shard report.json files or their folders")
+    m.add_argument("-o", "--output", required=True, metavar="MERGED",
+                   help="the merged report.json, or a folder to write report.json into")
     m.add_argument("--views", action="store_true",
                    help="also write report.html, summary.md and junit.xml beside the merged report")
 
@@ -75,9 +76,15 @@ def cmd_diff(args, stdout, stderr) -> int:
 def cmd_merge(args, stdout, stderr) -> int:
     import os
     from ..report.console import summary_table
+    from ..report.document import report_path
     from ..run.shard import merge_shards, write_merged
-    doc, warnings = merge_shards(args.reports, args.output)
-    path = write_merged(doc, args.output)
+    from .main import _outcome
+    reports = [report_path(p) for p in args.reports]
+    output = args.output
+    if os.path.isdir(output) or output.endswith(("/", os.sep)):
+        output = os.path.join(output, "report.json")
+    doc, warnings = merge_shards(reports, output)
+    path = write_merged(doc, output)
     for w in warnings:
         print(f"convwitness merge: {w}", file=stderr)
     if args.views:
@@ -85,9 +92,7 @@ def cmd_merge(args, stdout, stderr) -> int:
         write_views(doc, os.path.dirname(os.path.abspath(path)))
     print(summary_table(doc), file=stdout)
     print(f"merged {len(args.reports)} report(s) into {path}", file=stdout)
-    failed = any(r["verdict"] in ("fail", "error", "crash", "timeout") and not r["informational"]
-                 for r in doc["invariants"])
-    return 1 if failed or doc["status"] != "complete" else 0
+    return _outcome(doc, stderr)
 
 
 def cmd_generate(args, stdout, stderr) -> int:

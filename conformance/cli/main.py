@@ -5,6 +5,7 @@ import argparse
 import enum
 import os
 import sys
+import traceback
 
 from ..errors import AdapterLoadError, AdapterUnavailable, ConvWitnessError
 
@@ -12,11 +13,15 @@ __all__ = ["ExitCode", "parse_args", "run", "main"]
 
 
 class ExitCode(enum.IntEnum):
-    OK = 0                  # every applicable invariant passed
-    FAILED = 1              # an invariant failed, errored, crashed or timed out
-    USAGE = 2               # bad command line or input file
+    """Exit codes of ``convwitness``; the outcomes of a report map to them in
+    ``report/verdicts.py`` (``OUTCOMES``), the one place the rule lives."""
+    OK = 0                  # CONFORMANT (diff: no regression)
+    FAILED = 1              # NOT CONFORMANT: a deciding invariant failed, errored, crashed or timed out
+    USAGE = 2               # bad command line or input file (nothing written)
     NOT_LOADABLE = 3        # the adapter could not be loaded or is unavailable
-    INTERNAL = 4            # convwitness itself failed
+    INTERNAL = 4            # convwitness itself failed (a bug in convwitness, not in the adapter)
+    NOTHING_CERTIFIED = 5   # the run was complete but checked nothing applicable
+    PARTIAL = 6             # an interrupted run, one shard, or an incomplete merge (no failure in it)
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -127,6 +132,46 @@ def run(args: argparse.Namespace, stdout=None, stderr=None) -> int:
     except ConvWitnessError as exc:
         print(f"convwitness: {exc}", file=stderr)
         return ExitCode.USAGE
+    except Exception:       # not the adapter's doing, not the user's: a bug of convwitness
+        path = _save_internal(traceback.format_exc())
+        print(f"convwitness: internal error (a bug in convwitness, not in the adapter): "
+              f"{sys.exc_info()[0].__name__}: {sys.exc_info()[1]}; traceback saved to {path}",
+              file=stderr)
+        return ExitCode.INTERNAL
+
+
+def _save_internal(text: str) -> str:
+    import tempfile
+    try:
+        fd, path = tempfile.mkstemp(prefix="convwitness-internal-", suffix=".txt")
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        return path
+    except OSError:
+        return "(could not be saved)"
+
+
+def _check_only(only: str | None) -> None:
+    """``--only`` patterns that match no invariant: a usage error, before anything is written."""
+    import difflib
+    import fnmatch
+    from ..invariants import catalogue
+    from ..errors import ConvWitnessError as _Usage
+    ids = [inv.id for inv in catalogue()]
+    for pat in [p.strip() for p in (only or "").split(",") if p.strip()]:
+        if any(fnmatch.fnmatchcase(i, pat) or i.startswith(pat + ".") or i == pat for i in ids):
+            continue
+        close = difflib.get_close_matches(pat, ids + sorted({i.split(".")[0] + ".*" for i in ids}), n=3)
+        hint = f"; did you mean {', '.join(close)}?" if close else "; `convwitness invariants` lists them"
+        raise _Usage(f"--only {pat!r} matches no invariant (expected an id or glob such as "
+                     f"forward.reference or 'grad_input.*'){hint}")
+
+
+def _check_report_dir(path: str) -> None:
+    from ..errors import ConvWitnessError as _Usage
+    if os.path.exists(path) and not os.path.isdir(path):
+        raise _Usage(f"--report {path!r} is a file; expected a folder for report.json and its views "
+                     "(give a new or existing folder, e.g. --report reports/mine)")
 
 
 def _load(args, profile=None):
@@ -145,8 +190,12 @@ def cmd_run(args, stdout, stderr) -> int:
     if args.invariant_budget is not None:
         import dataclasses
         profile = dataclasses.replace(profile, budget_s=args.invariant_budget)
+    _check_only(args.only)
+    if args.report:
+        _check_report_dir(args.report)
     adapter = _load(args, profile)
     report_dir = args.report or os.path.join("reports", _safe(adapter.name))
+    _check_report_dir(report_dir)
     progress = None if args.quiet else Progress(stderr)
     extra = {}
     if getattr(args, "shard", None):
@@ -163,19 +212,26 @@ def cmd_run(args, stdout, stderr) -> int:
     _write_views(doc, report_dir)
     print(summary_table(doc), file=stdout)
     print(f"report: {os.path.join(report_dir, 'report.json')}", file=stdout)
-    if not results:
-        print("convwitness: no invariant matched --only", file=stderr)
-        return ExitCode.USAGE
-    if doc["status"] == "partial" and not doc.get("shard"):
-        print(f"convwitness: interrupted after {len(results)} invariant(s); the partial report "
+    return _outcome(doc, stderr, len(results))
+
+
+def _outcome(doc, stderr, done: int | None = None) -> int:
+    """The exit code of a report (report/verdicts.py judge), with one line on stderr for
+    the outcomes that need one."""
+    from ..report.verdicts import judge
+    j = judge(doc)
+    if j.outcome == "internal":
+        where = sorted({r["message"].rsplit("traceback saved to ", 1)[-1].rstrip(")")
+                        for r in doc["invariants"] if r["id"] in j.internal and "traceback saved to" in r["message"]})
+        print(f"convwitness: internal error in {', '.join(j.internal)} (a bug in convwitness, not in "
+              f"the adapter); traceback saved to {', '.join(where) or 'the report'}", file=stderr)
+    elif j.outcome == "nothing-certified":
+        print("convwitness: nothing certified: no applicable invariant was checked "
+              f"({len(j.not_applicable)} not applicable, reasons above)", file=stderr)
+    elif j.outcome == "partial" and not doc.get("shard") and done is not None:
+        print(f"convwitness: interrupted after {done} invariant(s); the partial report "
               "is written (status partial)", file=stderr)
-        return ExitCode.FAILED
-    return ExitCode.OK if _all_passed(doc) else ExitCode.FAILED
-
-
-def _all_passed(doc) -> bool:
-    return all(r["verdict"] in ("pass", "not-applicable") or r["informational"]
-               for r in doc["invariants"]) and any(r["verdict"] == "pass" for r in doc["invariants"])
+    return j.exit_code
 
 
 def _write_views(doc, report_dir):
@@ -217,7 +273,7 @@ def cmd_rebuild(args, stdout, stderr) -> int:
     print(summary_table(doc), file=stdout)
     print(f"rebuilt {os.path.join(args.report, 'report.json')} from the journal "
           f"({len(doc['invariants'])} invariants, status {doc['status']})", file=stdout)
-    return ExitCode.OK if _all_passed(doc) and doc["status"] == "complete" else ExitCode.FAILED
+    return _outcome(doc, stderr)
 
 
 def cmd_invariants(args, stdout, stderr) -> int:

@@ -1,7 +1,7 @@
 """Capabilities: the part of the geometry space an adapter claims to get right.
 
 A missing declaration means the whole default space: 1-3 spatial axes, float32 and
-float64, channels first, symmetric and asymmetric (non-negative) padding, any
+float64, channels first, every pass the object implements, symmetric and asymmetric (non-negative) padding, any
 stride, dilation and groups, with and without bias, zero-size batches, deterministic,
 direct summation in the dtype of the case.
 """
@@ -43,7 +43,10 @@ class Capabilities:
 
     ``error_models`` maps a dtype, or ``"dtype/pass"`` (pass one of forward, transposed,
     grad_input, grad_weight, grad_bias), to its :class:`ErrorModel`; the most specific
-    entry wins, and ``error_model`` covers the rest. ``max_elements`` caps the number of elements of any one array
+    entry wins, and ``error_model`` covers the rest. ``passes=None`` (the default) means
+    every pass the object implements (its ``forward``, ``backward`` and ``transposed``
+    methods); a set excludes the implemented passes it leaves out, and the loader records
+    those in ``unclaimed_passes`` (implemented, not claimed: untested). ``max_elements`` caps the number of elements of any one array
     (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
     """
 
@@ -51,7 +54,7 @@ class Capabilities:
     dtypes: frozenset = frozenset({"float32", "float64"})
     layouts: frozenset = frozenset({"channels_first"})
     padding: frozenset = frozenset({"symmetric", "asymmetric"})
-    passes: frozenset = frozenset({"forward"})
+    passes: frozenset | None = None
     stride: bool = True
     dilation: bool = True
     groups: bool = True
@@ -66,6 +69,7 @@ class Capabilities:
     #: claims that differ by pass and named constraints (geometry/claims.py)
     per_pass: tuple = ()
     constraints: tuple = ()
+    unclaimed_passes: frozenset = frozenset()
 
     def __post_init__(self):
         set_ = object.__setattr__
@@ -73,7 +77,9 @@ class Capabilities:
         set_(self, "dtypes", _frozen("dtypes", self.dtypes, STORAGE_FORMATS))
         set_(self, "layouts", _frozen("layouts", self.layouts, LAYOUTS))
         set_(self, "padding", _frozen("padding", self.padding, PADDING_KINDS))
-        set_(self, "passes", _frozen("passes", self.passes, PASS_NAMES))
+        if self.passes is not None:
+            set_(self, "passes", _frozen("passes", self.passes, PASS_NAMES))
+        set_(self, "unclaimed_passes", _frozen("unclaimed_passes", self.unclaimed_passes, PASS_NAMES))
         em = self.error_models
         if isinstance(em, Mapping):
             em = tuple(sorted(em.items()))
@@ -108,6 +114,20 @@ class Capabilities:
             return self
         return replace(self, **merge_for_passes(self, passes))
 
+    @property
+    def claimed_passes(self) -> frozenset:
+        """The passes claimed (``passes=None``, not yet resolved by a loader: all of them)."""
+        return frozenset(PASS_NAMES) if self.passes is None else self.passes
+
+    def for_methods(self, implemented) -> "Capabilities":
+        """These capabilities for an object implementing the passes ``implemented``:
+        ``passes=None`` becomes exactly those; implemented passes the claim leaves out
+        are recorded in ``unclaimed_passes``."""
+        implemented = frozenset(implemented)
+        claimed = implemented if self.passes is None else self.passes
+        unclaimed = self.unclaimed_passes | (implemented - claimed)
+        return replace(self, passes=claimed, unclaimed_passes=unclaimed)
+
     def refusal(self, spec: ConvSpec) -> str | None:
         """Why the spec is outside the claimed space, or None when it is admitted."""
         if spec.ndim not in self.ndims:
@@ -117,8 +137,8 @@ class Capabilities:
         if spec.layout not in self.layouts:
             return f"layout={spec.layout} not in layouts={sorted(self.layouts)}"
         need = "transposed" if spec.transposed else "forward"
-        if need not in self.passes:
-            return f"pass {need} not in passes={sorted(self.passes)}"
+        if need not in self.claimed_passes:
+            return f"pass {need} not in passes={sorted(self.claimed_passes)}"
         if not self.stride and any(s != 1 for s in spec.stride):
             return f"stride={spec.stride} but stride=False"
         if not self.dilation and any(d != 1 for d in spec.dilation):
@@ -195,7 +215,8 @@ class Capabilities:
         return (f"{''.join(str(n) for n in sorted(self.ndims))}-D "
                 f"{','.join(sorted(self.dtypes, key=STORAGE_FORMATS.index))} "
                 f"{'/'.join(sorted(self.layouts))} pad={'+'.join(k for k in PADDING_KINDS if k in self.padding)} "
-                f"{'+'.join(flags)} passes={','.join(p for p in PASS_NAMES if p in self.passes)}")
+                f"{'+'.join(flags)} passes={','.join(p for p in PASS_NAMES if p in self.claimed_passes)}"
+                + (" (inferred)" if self.passes is None else ""))
 
 
 _MODEL_PASSES = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")

@@ -71,11 +71,19 @@ class Invariant:
     def refusal(self, caps: Capabilities) -> str | None:
         """Why this invariant does not apply to an adapter, or None."""
         caps = self.claims(caps)
-        missing = sorted(self.passes - caps.passes)
+        claimed = caps.claimed_passes
+        missing = sorted(self.passes - claimed)
         if missing:
-            return f"needs pass(es) {missing}, adapter offers {sorted(caps.passes)}"
-        if self.needs.transposed and "transposed" not in caps.passes:
-            return "needs the transposed pass"
+            unclaimed = sorted(set(missing) & caps.unclaimed_passes)
+            if unclaimed:
+                return (f"needs pass(es) {missing}: implemented but not claimed by the adapter's "
+                        f"capabilities (passes={sorted(claimed)}), so untested")
+            return f"needs pass(es) {missing}, which the adapter does not implement"
+        if self.needs.transposed and "transposed" not in claimed:
+            if "transposed" in caps.unclaimed_passes:
+                return ("needs the transposed pass: implemented but not claimed by the adapter's "
+                        f"capabilities (passes={sorted(claimed)}), so untested")
+            return "needs the transposed pass, which the adapter does not implement"
         if self.requires is not None:
             return self.requires(caps)
         return None

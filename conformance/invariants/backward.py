@@ -194,9 +194,9 @@ def _homogeneity(adapter, case, g1, base):
     exact = g1.astype(np.float64) * 2.0 ** k
     gs = to_format(exact, spec.dtype)
     if not np.array_equal(gs.astype(np.float64), exact):
-        return [Evidence(True, message=f"homogeneity: 2^{k}·g is not exact in {spec.dtype}, skipped")]
+        return [Evidence.skip(f"homogeneity: 2^{k}·g is not exact in {spec.dtype}")]
     if not (products_stay_normal(adapter, spec, w, g1, k) and products_stay_normal(adapter, spec, x, g1, k)):
-        return [Evidence(True, message=f"homogeneity: products of 2^{k}·g would be subnormal, skipped")]
+        return [Evidence.skip(f"homogeneity: products of 2^{k}·g would be subnormal")]
     got1 = _backward(adapter, spec, x, w, b, g1)
     gots = _backward(adapter, spec, x, w, b, gs.astype(g1.dtype))
     deterministic = adapter.capabilities.deterministic

@@ -33,7 +33,7 @@ def _part(bound, pick):
 
 
 def _skip(why: str) -> Evidence:
-    return Evidence(True, message=f"skipped: {why}")
+    return Evidence.skip(why)
 
 
 def _caxis(spec: ConvSpec) -> int:

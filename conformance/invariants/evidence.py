@@ -46,14 +46,28 @@ class Evidence:
     message: str = ""
     checked: int = 0
     details: dict = field(default_factory=dict)
+    #: why the example was not checked ("" when it was): a skipped example is neither a
+    #: pass nor a fail, and never counts as checked
+    skipped: str = ""
+
+    @classmethod
+    def skip(cls, why: str) -> "Evidence":
+        """An example whose property could not be checked here, with the reason."""
+        return cls(True, message=f"skipped: {why}", skipped=why)
 
 
 def combine(*items: "Evidence") -> Evidence:
-    """Combine several measurements of one example: fails if any fails; worst share wins."""
+    """Combine several measurements of one example: fails if any fails; worst share wins.
+
+    Skipped measurements do not count; when every one skipped (or there is none), the
+    example is skipped with the first reason."""
     failed = [e for e in items if not e.ok]
     if failed:
         return max(failed, key=lambda e: e.share)
-    return max(items, key=lambda e: e.share) if items else Evidence(ok=True)
+    checked = [e for e in items if not e.skipped]
+    if checked:
+        return max(checked, key=lambda e: e.share)
+    return items[0] if items else Evidence.skip("nothing to compare")
 
 
 def _fmt(v) -> str:

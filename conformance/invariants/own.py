@@ -33,7 +33,7 @@ SCALAR_KINDS = tuple(k for k in NUMERIC_KINDS if k != "near_max")
 
 
 def _skip(why: str) -> Evidence:
-    return Evidence(True, message=f"skipped: {why}")
+    return Evidence.skip(why)
 
 
 def _cf(a: np.ndarray, layout: str) -> np.ndarray:

@@ -80,8 +80,8 @@ def matches_grad_input(adapter, case, ctx):
     spec = case.spec.replace(bias=False)
     conv = spec.matching_conv()
     if not adapter.capabilities.admits(conv):
-        return Evidence(True, message=f"skipped: matching convolution not admitted: "
-                                      f"{adapter.capabilities.refusal(conv)}")
+        return Evidence.skip(f"matching convolution not admitted: "
+                             f"{adapter.capabilities.refusal(conv)}")
     gy = _extend(case.x, spec, conv.output_size)
     x0 = np.zeros(conv.x_shape, dtype=case.x.dtype)
     gx = adapter.backward(conv, x0, case.w.copy(), None, gy.copy())[0]

@@ -3,10 +3,12 @@ from __future__ import annotations
 
 import sys
 
+from .verdicts import judge, word, word_of, worst_text
+
 __all__ = ["Progress", "summary_table"]
 
 _MARK = {"pass": "pass", "fail": "FAIL", "error": "ERROR", "crash": "CRASH", "timeout": "TIMEOUT",
-         "not-applicable": "n/a", "unavailable": "unavailable"}
+         "internal": "INTERNAL", "info": "info", "not-applicable": "n/a", "unavailable": "unavailable"}
 
 
 class Progress:
@@ -26,7 +28,8 @@ class Progress:
             r = payload["result"]
             self.examples += r.examples
             rate = self.examples / payload["elapsed"] if payload["elapsed"] > 0 else 0.0
-            verdict = _MARK.get(r.verdict, r.verdict) + (" (info)" if r.informational and r.verdict == "fail" else "")
+            w = word_of(r.verdict, r.informational)
+            verdict = _MARK.get(w, w)
             line = (f"[{i + 1}/{total}] {r.id:34s} {verdict:12s} {r.examples:4d} ex "
                     f"{r.duration_s:6.2f}s  (total {payload['elapsed']:.1f}s, {rate:.0f} ex/s)")
             self.stream.write(("\r" if self.live else "") + line + ("\x1b[K\n" if self.live else "\n"))
@@ -42,41 +45,42 @@ class Progress:
             self.stream.flush()
 
 
-def _share(v) -> str:
-    if v is None:
-        return "-"
-    if v == "inf":
-        return "inf"
-    return f"{v:.3g}"
-
-
 def summary_table(doc: dict) -> str:
-    rows = [("invariant", "verdict", "examples", "worst share", "ex/s")]
+    """The table of every invariant, then the verdict line, the not-applicable invariants
+    with their reasons, and each blocking invariant with its minimal case."""
+    j = judge(doc)
+    rows = [("invariant", "verdict", "examples", "skipped", "worst share", "ex/s")]
     for r in doc["invariants"]:
-        v = _MARK.get(r["verdict"], r["verdict"])
-        if r["informational"] and r["verdict"] == "fail":
-            v += " (info)"
-        rows.append((r["id"], v, str(r["examples"]), _share(r["worst_share"]),
-                     f"{r['examples_per_s']:.0f}"))
+        w = word(r)
+        rows.append((r["id"], _MARK.get(w, w), str(r["examples"]), str(r.get("skipped", 0)),
+                     worst_text(r), f"{r['examples_per_s']:.0f}"))
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     lines = ["  ".join(c.ljust(w) for c, w in zip(row, widths)) for row in rows]
     lines.insert(1, "  ".join("-" * w for w in widths))
-    s = doc["summary"]
-    verdict = "CONFORMANT" if doc["conformant"] else "NOT CONFORMANT"
     lines.append("")
-    lines.append(f"{doc['adapter']['name']} {doc['adapter']['version']}: {verdict} — "
-                 + ", ".join(f"{n} {k}" for k, n in s.items() if n)
-                 + f" in {doc['duration_s']:.1f}s (profile {doc['profile']['name']}, seed {doc['seed']})")
+    lines.append(j.line(doc) + f" in {doc['duration_s']:.1f}s")
+    if j.not_applicable:
+        lines.append("not applicable:")
+        lines += [f"  {text}" for text in j.not_applicable_lines()]
+    skips = [f"  {i}: {n}, commonest reason: {why}" for i, (n, why) in j.skipped.items()
+             if i not in dict(j.not_applicable)]
+    if skips:
+        lines += ["skipped examples (not counted as checked):"] + skips
+    if j.blocking or j.info:
+        lines.append("minimal cases:")
     for r in doc["invariants"]:
-        if r["verdict"] in ("fail", "error", "crash", "timeout") and r.get("witness"):
-            w = r["witness"]
-            lines.append(f"  {r['id']}: {r['message'].splitlines()[0] if r['message'] else r['verdict']}")
-            lines.append(f"    minimal: {w['geometry']} ({w['kind']})")
-            if w.get("replay"):
-                lines.append(f"    replay:  {w['replay']}")
-            for k, extra in enumerate(r.get("further_causes") or (), start=2):
+        if r["id"] in j.blocking or r["id"] in j.info:
+            first = r["message"].splitlines()[0] if r["message"] else r["verdict"]
+            lines.append(f"  {r['id']} ({_MARK.get(word(r), word(r))}): {first}")
+            w = r.get("witness")
+            if w:
+                lines.append(f"    minimal: {w['geometry']} ({w['kind']})")
+                if w.get("replay"):
+                    lines.append(f"    replay:  {w['replay']}")
+            for n, extra in enumerate(r.get("further_causes") or (), start=2):
                 fw = extra["witness"]
-                lines.append(f"    cause {k}: {extra['message'].splitlines()[0] if extra['message'] else extra['verdict']}")
+                first = extra["message"].splitlines()[0] if extra["message"] else extra["verdict"]
+                lines.append(f"    cause {n}: {first}")
                 lines.append(f"      minimal: {fw['geometry']} ({fw['kind']})")
                 if fw.get("replay"):
                     lines.append(f"      replay:  {fw['replay']}")

@@ -1,9 +1,9 @@
 """``convwitness diff OLD.json NEW.json``: what changed between two reports.
 
 For nightly regression jobs. Each invariant is put in one state per report:
-absent, ``na`` (not applicable / unavailable), ``pass``, ``fail`` (a failure that
-decides conformance: fail, error, crash or timeout) or ``info`` (a failure that is
-information only). The transitions sort into:
+absent, ``na`` (not applicable / unavailable), ``pass``, ``fail`` (a result that
+keeps the run from certifying: fail, error, crash, timeout or internal) or ``info`` (a
+deviation that is information only); the verdict words come from report/verdicts.py. The transitions sort into:
 
 * **newly failing** — pass, info, na or absent before, fail now (a regression);
 * **fixed** — fail before, pass (or information only) now;
@@ -31,6 +31,7 @@ import math
 from ..geometry.spec import ConvSpec
 from ..cases.features import feature_of
 from .outputs import FAILING, share_text
+from .verdicts import judge, word
 
 __all__ = ["DIFF_FORMAT", "diff_reports", "fingerprint", "render", "REGRESSIONS"]
 
@@ -39,13 +40,15 @@ REGRESSIONS = ("newly_failing", "no_longer_checked", "drift")
 
 
 def _state(r: dict | None) -> str:
+    """The state of one result, from its verdict word (report/verdicts.py)."""
     if r is None:
         return "absent"
-    if r["verdict"] in ("not-applicable", "unavailable"):
+    w = word(r)
+    if w in ("not-applicable", "unavailable"):
         return "na"
-    if r["verdict"] in FAILING:
-        return "info" if r["informational"] else "fail"
-    return "pass"
+    if w in FAILING or w == "internal":
+        return "fail"
+    return "info" if w == "info" else "pass"
 
 
 def geometry_shape(spec: dict) -> dict:
@@ -76,7 +79,7 @@ def _num(v) -> float:
 def _entry(i: str, o: dict | None, n: dict | None, **extra) -> dict:
     d = {"id": i, "old": o["verdict"] if o else None, "new": n["verdict"] if n else None}
     for side, r in (("old", o), ("new", n)):
-        if r is not None and r["verdict"] in FAILING:
+        if r is not None and word(r) in FAILING + ("internal", "info"):
             d[f"{side}_fingerprint"] = fingerprint(r)
             if r.get("witness"):
                 d[f"{side}_geometry"] = r["witness"]["geometry"]
@@ -149,7 +152,7 @@ def diff_reports(old: dict, new: dict, *, drift: float = 0.25) -> dict:
 def _side(doc: dict) -> dict:
     return {"adapter": doc["adapter"]["name"], "version": doc["adapter"]["version"],
             "profile": doc["profile"].get("name"), "seed": doc["seed"], "started": doc["started"],
-            "conformant": doc["conformant"], "status": doc["status"]}
+            "conformant": judge(doc).conformant, "verdict": judge(doc).headline, "status": doc["status"]}
 
 
 _TITLES = (("newly_failing", "Newly failing"), ("no_longer_checked", "No longer checked"),
@@ -167,7 +170,7 @@ def _line(key: str, e: dict, code) -> str:
         return f"{code(e['id'])}: {arrow}, {same} ({code(e['new_fingerprint'])})"
     if key == "no_longer_checked":
         return f"{code(e['id'])}: {arrow} ({e['reason']})"
-    geo = f", minimal case {code(e['new_geometry'])}" if e.get("new_geometry") and e["new"] in FAILING else ""
+    geo = f", minimal case {code(e['new_geometry'])}" if e.get("new_geometry") and e["new"] in FAILING + ("internal",) else ""
     note = " (information only: the adapter does not claim it)" if key == "information_only" else ""
     return f"{code(e['id'])}: {arrow}{geo}{note}"
 
@@ -186,9 +189,9 @@ def render(d: dict, fmt: str = "text") -> str:
     lines = [(f"### convwitness diff: {head}" if md else f"convwitness diff: {head}"),
              "" if md else "",
              f"old: {text(o['adapter'])} {text(o['version'])} ({o['profile']}, seed {o['seed']}, "
-             f"{'conformant' if o['conformant'] else 'not conformant'}, {o['started']})",
+             f"{o['verdict'].lower()}, {o['started']})",
              f"new: {text(n['adapter'])} {text(n['version'])} ({n['profile']}, seed {n['seed']}, "
-             f"{'conformant' if n['conformant'] else 'not conformant'}, {n['started']})"]
+             f"{n['verdict'].lower()}, {n['started']})"]
     if md:
         lines[2:4] = [f"- {lines[2]}", f"- {lines[3]}"]
     for key, title in _TITLES:

@@ -15,9 +15,10 @@ from collections import Counter
 from importlib import metadata
 
 from ..errors import ConvWitnessError
+from .verdicts import judge, word_of
 
 __all__ = ["REPORT_FORMAT", "build_report", "validate_report", "write_report", "load_report",
-           "schema", "library_versions", "ReportError"]
+           "report_path", "with_verdict", "schema", "library_versions", "ReportError"]
 
 REPORT_FORMAT = "convwitness-report/1"
 _LIBS = ("numpy", "hypothesis", "jsonschema", "torch", "jax", "jaxlib", "onnx", "onnxruntime",
@@ -54,12 +55,17 @@ def _share(x: float):
 
 
 def result_to_dict(r) -> dict:
+    """The JSON form of one result; its ``verdict`` is the verdict word (``info`` for a
+    deviation the adapter does not claim, whose raw verdict is kept in ``deviation``)."""
     if isinstance(r, dict):
         return r
+    verdict = word_of(r.verdict, r.informational)
+    extra = {"deviation": r.verdict} if verdict != r.verdict else {}
     return {
         "id": r.id, "statement": r.statement, "property": r.property, "passes": list(r.passes),
-        "verdict": r.verdict, "informational": bool(r.informational),
+        "verdict": verdict, **extra, "informational": bool(r.informational),
         "examples": int(r.examples), "geometries": int(r.geometries),
+        "skipped": int(r.skipped), "skip_reasons": list(r.skip_reasons),
         "worst_share": _share(r.worst_share), "worst_bound": r.worst_bound,
         "shares": [_share(s) for s in r.shares],
         "duration_s": round(float(r.duration_s), 6),
@@ -80,10 +86,6 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
                  shard: str | None = None, status: str = "complete") -> dict:
     """The report document of a run (a dict ready for JSON)."""
     invs = [result_to_dict(r) for r in results]
-    counts = Counter(r["verdict"] for r in invs)
-    deciding = [r for r in invs if not r["informational"]]
-    conformant = bool(deciding) and all(r["verdict"] in ("pass", "not-applicable") for r in deciding) \
-        and any(r["verdict"] == "pass" for r in deciding) and status == "complete"
     coverage: Counter = Counter()
     for r in invs:
         coverage.update(r["coverage"])
@@ -92,11 +94,11 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
         feat, _, value = key.partition("=")
         cov.setdefault(feat, {})[value] = n
     caps = adapter.capabilities
-    return {
+    doc = {
         "format": REPORT_FORMAT,
         "tool": {"name": "convwitness", "version": _tool_version()},
         "status": status,
-        "conformant": conformant,
+        "conformant": False,
         "adapter": {"name": adapter.name, "version": adapter.version, "source": adapter.source,
                     "capabilities": caps.to_dict()},
         "environment": {"python": sys.version.split()[0], "platform": platform.platform(),
@@ -106,12 +108,22 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
         "shard": shard,
         "started": _dt.datetime.fromtimestamp(started, _dt.timezone.utc).isoformat(),
         "duration_s": round(float(duration_s), 3),
-        "summary": {v: counts.get(v, 0) for v in
-                    ("pass", "fail", "error", "crash", "timeout", "not-applicable", "unavailable")},
+        "summary": {},
         "invariants": invs,
         "causes": group_causes(invs),
         "coverage": cov,
     }
+    return with_verdict(doc)
+
+
+def with_verdict(doc: dict) -> dict:
+    """Set ``summary``, ``conformant`` and ``verdict`` of ``doc`` from :func:`judge` (the
+    one place the rule is applied); returns ``doc``."""
+    j = judge(doc)
+    doc["summary"] = dict(j.counts)
+    doc["conformant"] = j.conformant
+    doc["verdict"] = j.to_dict(doc)
+    return doc
 
 
 def _tool_version() -> str:
@@ -145,8 +157,21 @@ def write_report(doc: dict, report_dir: str) -> str:
     return path
 
 
+def report_path(path: str) -> str:
+    """``path`` itself, or ``path/report.json`` when ``path`` is a report folder."""
+    if os.path.isdir(path):
+        inside = os.path.join(path, "report.json")
+        if not os.path.isfile(inside):
+            raise ReportError(f"{path!r} is a folder without report.json; expected a report.json or "
+                              "the folder `convwitness run --report DIR` wrote")
+        return inside
+    return path
+
+
 def load_report(path: str) -> dict:
-    """Read and validate a report.json (a clear error for anything else)."""
+    """Read and validate a report.json, or the report.json of a report folder (a clear
+    error for anything else)."""
+    path = report_path(path)
     try:
         with open(path, encoding="utf-8") as fh:
             doc = json.load(fh)

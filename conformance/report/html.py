@@ -18,6 +18,7 @@ import math
 import os
 
 from .outputs import FAILING, headline, is_failure, label, share_text
+from .verdicts import judge, word, worst_text
 
 __all__ = ["render"]
 
@@ -33,7 +34,7 @@ def esc(value) -> str:
 
 _CSS = """
 :root{--ink:#1d2433;--mute:#5b6475;--line:#d9dde5;--bg:#f5f6f8;--card:#fff;
---ok:#1b7f5a;--bad:#b42318;--info:#a15c07;--na:#7a8290;--acc:#2f5d9e}
+--ok:#1b7f5a;--bad:#b42318;--info:#a15c07;--na:#7a8290;--acc:#2f5d9e;--int:#6b3fa0}
 *{box-sizing:border-box}
 body{margin:0;background:var(--bg);color:var(--ink);
 font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,"DejaVu Sans",sans-serif}
@@ -47,7 +48,7 @@ header.top.v-part{border-top:8px solid var(--info)}
 .verdict{display:inline-block;font-weight:700;font-size:26px;letter-spacing:.06em;
 padding:4px 16px;border-radius:6px;margin-bottom:10px}
 .v-ok .verdict{background:var(--ok)} .v-bad .verdict{background:var(--bad)}
-.v-part .verdict{background:var(--info)}
+.v-part .verdict{background:var(--na)} .v-internal .verdict{background:var(--int)}
 header h1{margin:4px 0 2px;font-size:22px;font-weight:600}
 header h1 .ver{font-weight:400;color:#c4cad6;margin-left:8px}
 header p{margin:0;color:#c4cad6} header code{color:#fff}
@@ -57,11 +58,11 @@ ul.counts{list-style:none;display:flex;flex-wrap:wrap;gap:8px;padding:0;margin:1
 .chip{display:inline-block;border-radius:999px;padding:1px 10px;font-size:13px;font-weight:600;
 background:#e7eaf0;color:var(--ink);white-space:nowrap}
 .chip.pass{background:#dcf1e7;color:var(--ok)} .chip.fail,.chip.error,.chip.crash,.chip.timeout{background:#fbe3e1;color:var(--bad)}
-.chip.info{background:#fcefd9;color:var(--info)} .chip.na{background:#eceef2;color:var(--na)}
+.chip.info{background:#fcefd9;color:var(--info)} .chip.internal{background:#ece3f7;color:var(--int)} .chip.na{background:#eceef2;color:var(--na)}
 main{max-width:1120px;margin:0 auto;padding:8px 24px 40px}
 section{background:var(--card);border:1px solid var(--line);border-radius:10px;padding:18px 22px;margin:18px 0}
 section.inv.bad{border-left:6px solid var(--bad)} section.inv.ok{border-left:6px solid var(--ok)}
-section.inv.info{border-left:6px solid var(--info)} section.inv.na{border-left:6px solid var(--na)}
+section.inv.info{border-left:6px solid var(--info)} section.inv.internal{border-left:6px solid var(--int)} section.inv.na{border-left:6px solid var(--na)}
 h2{font-size:18px;margin:0 0 10px} h3{font-size:16px;margin:0} h4{font-size:14px;margin:16px 0 4px;color:var(--mute);
 text-transform:uppercase;letter-spacing:.05em}
 .head{display:flex;gap:12px;align-items:center;flex-wrap:wrap}
@@ -85,17 +86,18 @@ footer{max-width:1120px;margin:0 auto 30px;padding:0 24px;color:var(--mute);font
 
 
 def _chip(r: dict) -> str:
-    v = r["verdict"]
-    cls = "info" if v in FAILING and r["informational"] else ("na" if v in ("not-applicable", "unavailable") else v)
+    v = word(r)
+    cls = "na" if v in ("not-applicable", "unavailable") else v
     return f'<span class="chip {esc(cls)}">{esc(label(r))}</span>'
 
 
 def _state(r: dict) -> str:
+    v = word(r)
     if is_failure(r):
         return "bad"
-    if r["verdict"] in FAILING:
-        return "info"
-    return "ok" if r["verdict"] == "pass" else "na"
+    if v in ("info", "internal"):
+        return v
+    return "ok" if v == "pass" else "na"
 
 
 def _anchor(r: dict) -> str:
@@ -249,15 +251,18 @@ def _witness(r: dict, report_dir: str | None) -> str:
 def _invariant(r: dict, report_dir: str | None) -> str:
     facts = [("passes", ", ".join(r["passes"])), ("examples", r["examples"]),
              ("geometries", r["geometries"]), ("time", f'{r["duration_s"]:.2f} s'),
-             ("examples/s", f'{r["examples_per_s"]:.0f}'), ("worst share of bound", share_text(r["worst_share"]))]
+             ("examples/s", f'{r["examples_per_s"]:.0f}'), ("worst share of bound", worst_text(r)),
+             ("skipped", r.get("skipped", 0))]
     out = [f'<section class="inv {_state(r)}" id="{esc(_anchor(r))}">',
            f'<div class="head"><h3 class="mono">{esc(r["id"])}</h3>{_chip(r)}</div>',
            f'<p class="stmt">{esc(r["statement"])}</p>',
            '<div class="facts">' + "".join(f"<span>{esc(k)} <b>{esc(v)}</b></span>" for k, v in facts) + "</div>"]
     if r["reason"]:
         out.append(f'<p class="note">{esc(r["reason"])}</p>')
+    for s in r.get("skip_reasons") or []:
+        out.append(f'<p class="note">skipped {s["examples"]}: {esc(s["reason"])}</p>')
     out.append(f'<h4>Property</h4><pre>{esc(r["property"])}</pre>')
-    if r["verdict"] not in ("not-applicable", "unavailable"):
+    if word(r) not in ("not-applicable", "unavailable"):
         if r["worst_bound"]:
             out.append(f'<h4>Bound of the worst example</h4><pre>{esc(r["worst_bound"])}</pre>')
         out.append("<h4>Share of the bound used, per example</h4>" + share_chart(r["shares"]))
@@ -265,7 +270,8 @@ def _invariant(r: dict, report_dir: str | None) -> str:
         out.append(_witness(r, report_dir))
     elif r["message"]:
         out.append(f'<h4>Message</h4><pre>{esc(r["message"])}</pre>')
-    for key, title in (("traceback", "Traceback of the adapter"), ("output", "What the adapter printed")):
+    tb = "Traceback of convwitness (a bug in convwitness)" if word(r) == "internal" else "Traceback of the adapter"
+    for key, title in (("traceback", tb), ("output", "What the adapter printed")):
         if r[key]:
             out.append(f'<details><summary>{title}</summary><pre>{esc(r[key])}</pre></details>')
     out.append("</section>")
@@ -282,32 +288,28 @@ def _when(iso: str) -> str:
 
 
 def _header(doc: dict) -> str:
-    a, s = doc["adapter"], doc["summary"]
-    head = headline(doc)
-    cls = {"CONFORMANT": "v-ok", "NOT CONFORMANT": "v-bad"}.get(head, "v-part")
+    a, j = doc["adapter"], judge(doc)
+    head = j.headline
+    cls = {"CONFORMANT": "v-ok", "NOT CONFORMANT": "v-bad", "INTERNAL ERROR": "v-internal"}.get(head, "v-part")
     meta = [("profile", doc["profile"].get("name", "?")), ("seed", doc["seed"]),
             ("run time", f'{doc["duration_s"]:.1f} s'), ("started", _when(doc["started"])),
             ("status", doc["status"] + (f' (shard {doc["shard"]})' if doc.get("shard") else "")),
             ("tool", f'{doc["tool"]["name"]} {doc["tool"]["version"]}')]
-    info = sum(r["verdict"] in FAILING and r["informational"] for r in doc["invariants"])
-    chips = []
-    for k, n in s.items():
-        n -= sum(r["verdict"] == k and r["informational"] for r in doc["invariants"]) if k in FAILING else 0
-        if n:
-            chips.append(f'<li><span class="chip {"na" if k in ("not-applicable", "unavailable") else k}">'
-                         f'{n} {esc(k)}</span></li>')
-    if info:
-        chips.append(f'<li><span class="chip info">{info} information only</span></li>')
-    chips = "".join(chips)
+    chips = "".join(f'<li><span class="chip {"na" if k in ("not-applicable", "unavailable") else k}">'
+                    f'{n} {esc(label({"verdict": k}))}</span></li>' for k, n in j.counts.items() if n)
+    na = "".join(f"<li><code>{esc(i)}</code>: {esc(why)}</li>" for i, why in j.not_applicable)
     return (f'<header class="top {cls}"><div class="verdict">{esc(head)}</div>'
             f'<h1>{esc(a["name"])}<span class="ver">{esc(a["version"])}</span></h1>'
+            f'<p class="line" id="verdict-line">{esc(j.line(doc))}</p>'
             f'<p>adapter <code>{esc(a["source"])}</code></p><dl class="meta">'
             + "".join(f"<div><dt>{esc(k)}</dt><dd>{esc(v)}</dd></div>" for k, v in meta)
-            + f'</dl><ul class="counts">{chips}</ul></header>')
+            + f'</dl><ul class="counts">{chips}</ul>'
+            + (f'<details class="na"><summary>not applicable ({len(j.not_applicable)})</summary>'
+               f'<ul>{na}</ul></details>' if na else "") + '</header>')
 
 
 def _failures(doc: dict) -> str:
-    bad = [r for r in doc["invariants"] if r["verdict"] in FAILING]
+    bad = [r for r in doc["invariants"] if word(r) in FAILING + ("internal", "info")]
     if not bad:
         return ""
     items = []
@@ -321,7 +323,7 @@ def _failures(doc: dict) -> str:
 
 
 def _not_applicable(doc: dict) -> str:
-    rows = [r for r in doc["invariants"] if r["verdict"] in ("not-applicable", "unavailable")]
+    rows = [r for r in doc["invariants"] if word(r) in ("not-applicable", "unavailable")]
     if not rows:
         return ""
     body = "".join(f'<tr id="{esc(_anchor(r))}"><td class="mono">{esc(r["id"])}</td><td>{_chip(r)}</td>'
@@ -334,18 +336,19 @@ def _not_applicable(doc: dict) -> str:
 
 def _overview(doc: dict) -> str:
     rows = []
-    skipped = [r for r in doc["invariants"] if r["verdict"] in ("not-applicable", "unavailable")]
+    skipped = [r for r in doc["invariants"] if word(r) in ("not-applicable", "unavailable")]
     for r in doc["invariants"]:
         if r in skipped:
             continue
-        cells = (r["examples"], share_text(r["worst_share"]), f'{r["duration_s"]:.2f} s',
+        cells = (r["examples"], r.get("skipped", 0), worst_text(r), f'{r["duration_s"]:.2f} s',
                  f'{r["examples_per_s"]:.0f}')
         rows.append(f'<tr><td><a class="mono" href="#{esc(_anchor(r))}">{esc(r["id"])}</a></td>'
                     f'<td>{_chip(r)}</td>' + "".join(f'<td class="num">{esc(c)}</td>' for c in cells) + "</tr>")
     note = (f'<p class="note">{len(skipped)} more invariant(s) were not checked on this adapter: '
             '<a href="#not-applicable">see why</a>.</p>' if skipped else "")
     return ('<section id="overview"><h2>Invariants</h2><table><thead><tr><th>invariant</th>'
-            '<th>verdict</th><th class="num">examples</th><th class="num">worst share</th>'
+            '<th>verdict</th><th class="num">examples</th><th class="num">skipped</th>'
+            '<th class="num">worst share</th>'
             '<th class="num">time</th><th class="num">examples/s</th></tr></thead><tbody>'
             + "".join(rows) + f"</tbody></table>{note}</section>")
 
@@ -370,7 +373,7 @@ def render(doc: dict, report_dir: str | None = None) -> str:
             '<section id="coverage"><h2>Coverage of geometry features</h2>', coverage_chart(doc),
             "</section>"]
     body += [_invariant(r, report_dir) for r in doc["invariants"]
-             if r["verdict"] not in ("not-applicable", "unavailable")]
+             if word(r) not in ("not-applicable", "unavailable")]
     body += [_not_applicable(doc), _environment(doc), "</main>",
              f'<footer>Written by convwitness {esc(doc["tool"]["version"])} from report.json '
              f'({esc(doc["format"])}). A passing report is evidence for the geometries drawn, '

@@ -9,12 +9,13 @@ from __future__ import annotations
 
 import re
 
-from .outputs import FAILING, headline, label, share_text
+from .verdicts import judge, label, worst_text
 
 __all__ = ["render", "md_text", "md_code"]
 
 _SPECIAL = re.compile(r"([\\`*_\[\]|~])")
-_MARK = {"CONFORMANT": "✅", "NOT CONFORMANT": "❌", "PARTIAL": "⏸"}
+_MARK = {"CONFORMANT": "✅", "NOT CONFORMANT": "❌", "PARTIAL": "⏸", "INTERNAL ERROR": "⚠️",
+         "NOTHING CERTIFIED": "⭕"}
 
 
 def md_text(value) -> str:
@@ -41,23 +42,33 @@ def _block(value) -> str:
 
 
 def render(doc: dict, report_dir: str | None = None) -> str:
-    a, s = doc["adapter"], doc["summary"]
-    head = headline(doc)
-    counts = ", ".join(f"{n} {k}" for k, n in s.items() if n) or "nothing ran"
-    lines = [f"### {_MARK.get(head, '')} convwitness: {head} — {md_text(a['name'])} {md_text(a['version'])}",
+    a = doc["adapter"]
+    j = judge(doc)
+    lines = [f"### {_MARK.get(j.headline, '')} convwitness: {j.headline} — {md_text(a['name'])} {md_text(a['version'])}",
              "",
-             f"{len(doc['invariants'])} invariants: {counts} · profile {md_text(doc['profile'].get('name', '?'))}"
-             f" · seed {doc['seed']} · {doc['duration_s']:.1f} s"
+             f"**{md_text(j.line(doc))}**",
+             "",
+             f"{len(doc['invariants'])} invariants · {doc['duration_s']:.1f} s"
              + (f" · status {doc['status']}" + (f" (shard {md_text(doc['shard'])})" if doc.get("shard") else "")
                 if doc["status"] != "complete" else ""),
              ""]
-    bad = [r for r in doc["invariants"] if r["verdict"] in FAILING]
+    if j.not_applicable:
+        lines += ["<details><summary>Not applicable "
+                  f"({len(j.not_applicable)})</summary>", ""]
+        lines += [f"- {md_code(i)}: {md_text(why)}" for i, why in j.not_applicable]
+        lines += ["", "</details>", ""]
+    skips = [(i, n, why) for i, (n, why) in j.skipped.items() if i not in dict(j.not_applicable)]
+    if skips:
+        lines += [f"<details><summary>Skipped examples, not counted ({len(skips)} invariants)</summary>", ""]
+        lines += [f"- {md_code(i)}: {n}, commonest reason: {md_text(why)}" for i, n, why in skips]
+        lines += ["", "</details>", ""]
+    bad = [r for r in doc["invariants"] if r["id"] in j.blocking or r["id"] in j.info]
     if bad:
         lines += ["| invariant | verdict | worst share | minimal case |", "|---|---|---|---|"]
         for r in bad:
             w = r["witness"]
             case = f"{md_code(w['geometry'])} ({md_text(w['kind'])})" if w else "–"
-            lines.append(f"| {md_code(r['id'])} | {md_text(label(r))} | {share_text(r['worst_share'])} | {case} |")
+            lines.append(f"| {md_code(r['id'])} | {md_text(label(r))} | {worst_text(r)} | {case} |")
         lines.append("")
         for r in bad:
             if not r["message"] and not r["witness"]:
@@ -76,13 +87,14 @@ def render(doc: dict, report_dir: str | None = None) -> str:
                     lines += [_block(fw["replay"]), ""]
             lines += ["</details>", ""]
     else:
-        lines += ["Every applicable invariant passed." if doc["conformant"] else
-                  "No invariant failed, but the run does not certify the adapter (see the report).", ""]
+        lines += ["Every applicable invariant passed." if j.conformant else
+                  "No invariant failed, but the run does not certify the adapter (see the verdict line).", ""]
     lines += ["<details><summary>All invariants</summary>", "",
-              "| invariant | verdict | examples | worst share | examples/s |", "|---|---|---:|---:|---:|"]
+              "| invariant | verdict | examples | skipped | worst share | examples/s |",
+              "|---|---|---:|---:|---:|---:|"]
     for r in doc["invariants"]:
-        lines.append(f"| {md_code(r['id'])} | {md_text(label(r))} | {r['examples']} | "
-                     f"{share_text(r['worst_share'])} | {r['examples_per_s']:.0f} |")
+        lines.append(f"| {md_code(r['id'])} | {md_text(label(r))} | {r['examples']} | {r.get('skipped', 0)} | "
+                     f"{worst_text(r)} | {r['examples_per_s']:.0f} |")
     lines += ["", "</details>", "",
               f"<sub>convwitness {md_text(doc['tool']['version'])} · adapter {md_code(a['source'])} · "
               "full report in report.html</sub>", ""]

@@ -2,8 +2,9 @@
 
 Each view only consumes the report document (the dict that ``report.json`` holds);
 none of them runs an invariant or loads an adapter. :func:`write_views` writes all
-three beside ``report.json``; the helpers here are what the views share (verdict
-labels, how a share of the bound is printed, which results count as failures).
+three beside ``report.json``; the helpers here are what the views share (how a share of
+the bound is printed, atomic writes). Verdict words, counts and the conformance rule
+come from :mod:`convwitness.report.verdicts`, the one place they are computed.
 """
 from __future__ import annotations
 
@@ -12,36 +13,21 @@ import os
 __all__ = ["write_views", "VIEWS", "FAILING", "headline", "label", "share_text", "is_failure",
            "write_text"]
 
-#: verdicts that mean the adapter got something wrong on a case it claims
-FAILING = ("fail", "error", "crash", "timeout")
+from .verdicts import AGAINST as FAILING, judge, label, word
 
 #: file name -> module that renders it (each has ``render(doc, report_dir) -> str``)
 VIEWS = {"report.html": "html", "summary.md": "markdown", "junit.xml": "junit"}
 
-_LABEL = {"pass": "pass", "fail": "fail", "error": "error", "crash": "crash",
-          "timeout": "timeout", "not-applicable": "not applicable", "unavailable": "unavailable"}
-
 
 def is_failure(r: dict) -> bool:
-    """A failing result that decides conformance (informational failures do not)."""
-    return r["verdict"] in FAILING and not r["informational"]
-
-
-def label(r: dict) -> str:
-    """The verdict of one invariant result for people."""
-    text = _LABEL.get(r["verdict"], r["verdict"])
-    if r["verdict"] in FAILING and r["informational"]:
-        text += " (information only)"
-    return text
+    """A failing result that decides conformance (information-only deviations do not)."""
+    return word(r) in FAILING
 
 
 def headline(doc: dict) -> str:
-    """CONFORMANT, NOT CONFORMANT, or PARTIAL (an interrupted run or one shard)."""
-    if doc["status"] != "complete":
-        if any(is_failure(r) for r in doc["invariants"]):
-            return "NOT CONFORMANT"
-        return "PARTIAL"
-    return "CONFORMANT" if doc["conformant"] else "NOT CONFORMANT"
+    """CONFORMANT, NOT CONFORMANT, INTERNAL ERROR, NOTHING CERTIFIED or PARTIAL
+    (:func:`convwitness.report.verdicts.judge`)."""
+    return judge(doc).headline
 
 
 def share_text(v) -> str:

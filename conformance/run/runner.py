@@ -19,16 +19,21 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis.database import DirectoryBasedExampleDatabase
 from hypothesis.errors import Unsatisfiable
 
-from ..errors import (AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterTimeout,
-                     ConvWitnessError)
+from ..errors import AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterTimeout
 from ..invariants.evidence import Evidence, InvariantFailure
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
 from ..cases.features import feature_of
 
-__all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted"]
+__all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted",
+           "SKIP_CAP", "DECIDING_FAILURES"]
 
 MAX_SHARES = 400
+#: when examples skip, up to SKIP_CAP times the profile's geometries are drawn to reach
+#: the profile's count of checked geometries
+SKIP_CAP = 2
+#: verdicts of a result that go against the adapter (unless information only)
+DECIDING_FAILURES = ("fail", "error", "crash", "timeout")
 
 
 @dataclass
@@ -41,6 +46,8 @@ class InvariantResult:
     informational: bool = False
     examples: int = 0
     geometries: int = 0
+    skipped: int = 0
+    skip_reasons: list = field(default_factory=list)
     worst_share: float = 0.0
     worst_bound: str = ""
     shares: list = field(default_factory=list)
@@ -77,11 +84,13 @@ def select(caps, only=None) -> list[tuple[Invariant, str | None]]:
 
 
 def hypothesis_settings(profile: Profile, database_dir: str | None, *, shrink: bool = True):
+    """Settings of one invariant's test: up to SKIP_CAP x the profile's geometries are
+    drawn; the test body stops (``Enough``) once the profile's count is checked."""
     phases = list(hypothesis.Phase)
     if not shrink:
         phases = [p for p in phases if p is not hypothesis.Phase.shrink]
     return settings(
-        max_examples=profile.examples,
+        max_examples=profile.examples * SKIP_CAP,
         deadline=profile.deadline_ms,
         database=DirectoryBasedExampleDatabase(database_dir) if database_dir else None,
         suppress_health_check=list(HealthCheck),
@@ -105,12 +114,23 @@ class StopSearch(BaseException):
     A BaseException, so hypothesis stops instead of treating it as a failure."""
 
 
+class Enough(BaseException):
+    """Raised inside a hypothesis test once the profile's count of checked geometries is
+    reached (more are drawn only to make up for skipped ones)."""
+
+
 class _Tally:
-    """What the test body saw: counts, shares, coverage and the last failing case."""
+    """What the test body saw: counts, shares, coverage and the last failing case.
+
+    ``examples`` and ``geometries`` count what was checked; ``skipped`` counts examples
+    that could not be checked, ``skip_reasons`` why."""
 
     def __init__(self):
         self.examples = 0
         self.geometries = 0
+        self.drawn = 0
+        self.skipped = 0
+        self.skip_reasons: Counter = Counter()
         self.shares: list[float] = []
         self.worst: Evidence | None = None
         self.failure = None          # (case, evidence or exception)
@@ -137,6 +157,11 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
     context = context or Context(profile=profile)
     strategy = inv.strategy(adapter.capabilities, profile)
 
+    def geometry_checked(spec):
+        tally.geometries += 1
+        for k, v in feature_of(spec).items():
+            tally.coverage[f"{k}={v}"] += 1
+
     def body(cases):
         now = time.perf_counter()
         if tally.started is None:
@@ -144,28 +169,41 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         elif now - tally.started > profile.budget_s:
             tally.stopped = True
             raise BudgetExhausted(f"{inv.id} used its budget of {profile.budget_s:g} s")
+        if tally.failure is None and tally.geometries >= profile.examples:
+            raise Enough()
+        tally.drawn += 1
         spec = cases[0].spec
         if exclude is not None and exclude(spec):
             hypothesis.reject()        # a known cause's region (run/further.py)
-        tally.geometries += 1
-        for k, v in feature_of(spec).items():
-            tally.coverage[f"{k}={v}"] += 1
+        checked_here = False
         worst = 0.0
         for case in cases:
-            tally.coverage[f"kind={case.kind}"] += 1
-            tally.examples += 1
             try:
                 ev = inv.check(adapter, case, context)
             except AdapterTimeout as exc:
                 tally.failure = (case, exc)
                 tally.hung = True
+                tally.examples += 1
+                tally.coverage[f"kind={case.kind}"] += 1
+                if not checked_here:
+                    geometry_checked(spec)
                 raise StopSearch(str(exc)) from None
-            except (AdapterRaised, AdapterOutputError, AdapterCrashed) as exc:
-                tally.failure = (case, exc)
-                raise
             except Exception as exc:
                 tally.failure = (case, exc)
+                tally.examples += 1
+                tally.coverage[f"kind={case.kind}"] += 1
+                if not checked_here:
+                    geometry_checked(spec)
                 raise
+            if ev.skipped:
+                tally.skipped += 1
+                tally.skip_reasons[ev.skipped] += 1
+                continue
+            tally.examples += 1
+            tally.coverage[f"kind={case.kind}"] += 1
+            if not checked_here:
+                checked_here = True
+                geometry_checked(spec)
             tally.record(case, ev)
             if ev.details.get("vacuous"):
                 tally.vacuous += 1
@@ -189,13 +227,17 @@ def _failure_exception(what):
 
 
 def _verdict_of(exc) -> str:
+    """The verdict of what ended an invariant: the adapter's doing, or ``internal`` (an
+    exception that convwitness did not expect is a bug of convwitness, never the adapter's)."""
     if isinstance(exc, (InvariantFailure, AdapterOutputError)):
         return "fail"
     if isinstance(exc, AdapterCrashed):
         return "crash"
     if isinstance(exc, AdapterTimeout):
         return "timeout"
-    return "error"
+    if isinstance(exc, AdapterRaised):
+        return "error"
+    return "internal"
 
 
 def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
@@ -228,10 +270,12 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                 test()
         except StopSearch:
             raise _failure_exception(tally.failure[1]) from None
+        except Enough:
+            pass
         except BudgetExhausted:
             if tally.failure is None:
                 res.reason = (f"stopped at the time budget of {profile.budget_s:g} s after "
-                              f"{tally.examples} examples")
+                              f"{tally.examples} checked examples")
             else:
                 raise _failure_exception(tally.failure[1]) from None
     except Unsatisfiable as exc:
@@ -243,22 +287,26 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         if isinstance(exc, AdapterRaised):
             res.traceback = exc.traceback_text
         res.output = getattr(exc, "output", "") or ""
-    except ConvWitnessError as exc:
-        res.verdict = "error"
-        res.message = f"convwitness could not run this invariant: {exc}"
+    except Exception as exc:   # a bug of convwitness itself: never the adapter's verdict
+        res.verdict = "internal"
+        res.message = f"{type(exc).__name__}: {exc}"
         res.traceback = traceback.format_exc()
-    except Exception as exc:   # a bug of convwitness itself: say so loudly
-        res.verdict = "error"
-        res.message = (f"internal error in convwitness while checking {inv.id}: "
-                       f"{type(exc).__name__}: {exc}")
-        res.traceback = traceback.format_exc()
-    if tally.failure is not None and res.verdict in ("fail", "error", "crash", "timeout"):
+    if tally.failure is not None and res.verdict in DECIDING_FAILURES + ("internal",):
         # the message of the minimal case (the last failing execution), to match the witness
         what = tally.failure[1]
         res.verdict = _verdict_of(what if not isinstance(what, Evidence) else InvariantFailure(what))
         res.message = what.message if isinstance(what, Evidence) else str(what)
         if isinstance(what, AdapterRaised):
             res.traceback = what.traceback_text
+        elif not isinstance(what, Evidence) and _verdict_of(what) == "internal":
+            res.message = f"{type(what).__name__}: {what}"
+            res.traceback = "".join(traceback.format_exception(what))
+    if res.verdict == "internal":
+        res.message = (f"internal error in convwitness (a bug in convwitness, not in the adapter) "
+                       f"while checking {inv.id}: {res.message}")
+        saved = _save_traceback(report_dir, inv.id, res.traceback)
+        if saved:
+            res.message += f" (traceback saved to {saved})"
     if tally.vacuous:
         res.reason = (f"{tally.vacuous} of {tally.examples} examples had a vacuous bound (n·u >= 1): "
                       f"{tally.vacuous_why}").strip()
@@ -273,15 +321,20 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         res.output = (res.output + text)[-20000:] if text else res.output[-20000:]
     res.duration_s = time.perf_counter() - t0
     res.examples, res.geometries = tally.examples, tally.geometries
+    res.skipped = tally.skipped
+    res.skip_reasons = [{"reason": why, "examples": n} for why, n in tally.skip_reasons.most_common(3)]
     res.shares = tally.shares
     res.coverage = dict(tally.coverage)
+    _account_for_skips(res, tally, profile)
     if tally.worst is not None:
         res.worst_share = float(tally.worst.share)
         res.worst_bound = tally.worst.message.splitlines()[0] if tally.worst.message else ""
-    if res.verdict in ("fail", "error", "crash", "timeout") and tally.failure is not None:
+    if res.verdict in DECIDING_FAILURES + ("internal",) and tally.failure is not None:
         case, what = tally.failure
         if isinstance(what, Evidence):
-            res.worst_share = max(res.worst_share, float(what.share))
+            # the share of the minimal case, the one the message and the witness show
+            res.worst_share = float(what.share)
+            res.worst_bound = what.message.splitlines()[0] if what.message else res.worst_bound
         if report_dir:
             res.witness = save_witness(case, inv, res, report_dir, seed, adapter, replay_hint,
                                        name=witness_name)
@@ -289,6 +342,46 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
             res.witness = {"spec": case.spec.to_dict(), "geometry": case.spec.describe(),
                            "kind": case.kind}
     return res
+
+
+def _account_for_skips(res: InvariantResult, tally: _Tally, profile: Profile) -> None:
+    """A passing invariant that checked nothing is not applicable (with the commonest
+    reason); one that checked fewer geometries than the profile asks says so."""
+    if res.verdict != "pass":
+        return
+    if tally.examples == 0:
+        res.verdict = "not-applicable"
+        if tally.skipped:
+            why, n = tally.skip_reasons.most_common(1)[0]
+            res.reason = (f"every example skipped ({tally.skipped} of {tally.skipped}, "
+                          f"{n} because {why})")
+        else:
+            res.reason = "no example was checked" + (f" ({res.reason})" if res.reason else "")
+        return
+    if tally.skipped and tally.geometries < profile.examples and not tally.stopped:
+        short = (f"checked {tally.geometries} of the profile's {profile.examples} geometries: "
+                 f"{tally.skipped} example(s) skipped in {tally.drawn} drawn (cap {SKIP_CAP}x)")
+        res.reason = f"{short}; {res.reason}" if res.reason else short
+
+
+def _save_traceback(report_dir: str | None, inv_id: str, text: str) -> str:
+    """Write an internal error's traceback to ``report_dir/internal/<id>.txt``
+    (or a temporary file without a report folder); returns the path."""
+    import tempfile
+    try:
+        if report_dir:
+            folder = os.path.join(report_dir, "internal")
+            os.makedirs(folder, exist_ok=True)
+            path = os.path.join(folder, f"{inv_id}.txt")
+            with open(path, "w", encoding="utf-8") as fh:
+                fh.write(text)
+            return path
+        fd, path = tempfile.mkstemp(prefix=f"convwitness-internal-{inv_id}-", suffix=".txt")
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        return path
+    except OSError:
+        return ""
 
 
 def save_witness(case, inv, res, report_dir, seed, adapter, replay_hint, name=None) -> dict:

@@ -93,4 +93,6 @@ def replay(path: str, adapter, invariant_id: str | None = None):
         return "crash", None, str(exc), meta
     except AdapterTimeout as exc:
         return "timeout", None, str(exc), meta
+    if ev.skipped:
+        return "not-applicable", ev, f"{inv_id} could not be checked on this case: {ev.skipped}", meta
     return ("pass" if ev.ok else "fail"), ev, ev.message, meta

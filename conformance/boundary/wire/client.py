@@ -191,7 +191,9 @@ class ExecAdapter:
             raise _Failure(AdapterOutputError, f"{where}: header field capabilities must be an "
                            f"object of Capabilities fields, got {caps!r}")
         try:
-            return Capabilities.from_dict(caps)
+            declared = Capabilities.from_dict(caps)
+            # a foreign program has no methods to look at: without `passes` it claims forward only
+            return declared if declared.passes is not None else declared.replace(passes={"forward"})
         except (ConvWitnessError, TypeError, ValueError) as exc:
             raise _Failure(AdapterOutputError, f"{where}: header field capabilities: {exc}") from None
 
