@@ -89,6 +89,17 @@ def render(doc: dict, report_dir: str | None = None) -> str:
     else:
         lines += ["Every applicable invariant passed." if j.conformant else
                   "No invariant failed, but the run does not certify the adapter (see the verdict line).", ""]
+    causes = doc.get("causes") or []
+    if causes:
+        lines += ["## Causes", "",
+                  "Failures grouped by cause (the same signature: verdict kind plus the geometry "
+                  "features of the minimal case, or a replayed witness that came back).", "",
+                  "| verdict | invariants | signature | witness |", "|---|---|---|---|"]
+        for c in causes:
+            lines.append(f"| {md_text(c['verdict'])} | {md_text(', '.join(c['invariants']))} | "
+                         f"{md_text(c['signature'].partition(': ')[2])} | "
+                         f"{md_code(c['witness']) if c['witness'] else ''} |")
+        lines.append("")
     lines += ["<details><summary>All invariants</summary>", "",
               "| invariant | verdict | examples | skipped | worst share | examples/s |",
               "|---|---|---:|---:|---:|---:|"]

@@ -142,8 +142,11 @@ class Judgement:
     def line(self, doc: dict) -> str:
         """The verdict line every view prints: headline, adapter, counts, scope."""
         a = doc["adapter"]
-        out = (f"{self.headline} — {a['name']} {a['version']}".rstrip() + f": {self.counts_text()}; "
-               f"covers {self.scope_text()}")
+        causes = [c for c in doc.get("causes") or () if c.get("verdict") in AGAINST]
+        why = (f" ({len(causes)} cause{'s' if len(causes) != 1 else ''}, see causes)"
+               if self.against and causes else "")
+        out = (f"{self.headline} — {a['name']} {a['version']}".rstrip() + f": {self.counts_text()}"
+               f"{why}; covers {self.scope_text()}")
         if self.unclaimed:
             out += f"; {self.unclaimed_text()}"
         return out
