@@ -30,16 +30,16 @@ PROBE_FLOOR_S = 5.0
 def call_signature(op: str, args, kwargs) -> tuple:
     """What a compile-per-shape port keys its compiled code on: the method, each
     array's shape and dtype (other arguments by value), and the keyword arguments."""
-    def one(a):
+    parts = [op]
+    for a in args:
         if isinstance(a, np.ndarray):
-            return ("array", a.shape, a.dtype.str)
-        if a is None or isinstance(a, (bool, int, float, str)):
-            return a
-        if isinstance(a, (tuple, list)):
-            return tuple(one(v) for v in a)
-        return repr(a)
-    return (op, tuple(one(a) for a in args),
-            tuple(sorted((k, one(v)) for k, v in kwargs.items())))
+            parts.append((a.shape, a.dtype.str))
+        elif a is None or isinstance(a, (bool, int, float, str)):
+            parts.append(a)
+        else:
+            parts.append(repr(a))
+    parts.append(repr(sorted(kwargs.items())))
+    return tuple(parts)
 
 
 class CallClock:
