@@ -6,8 +6,6 @@ float64, round once to the output format".
 """
 from __future__ import annotations
 
-import numpy as np
-
 from convwitness.numerics import reference as ref
 from convwitness.numerics.bounds import ErrorModel
 from convwitness.geometry.capabilities import Capabilities

@@ -78,7 +78,7 @@ def cmd_merge(args, stdout, stderr) -> int:
     from ..report.console import summary_table
     from ..report.document import report_path
     from ..run.shard import merge_shards, write_merged
-    from .main import _outcome
+    from .outcome import outcome as _outcome
     reports = [report_path(p) for p in args.reports]
     output = args.output
     if os.path.isdir(output) or output.endswith(("/", os.sep)):

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .evidence import Evidence, compare, combine
+from .evidence import compare, combine
 from . import invariant
 from ._common import copies, overflow_possible, pass_bound
 

@@ -13,7 +13,7 @@ import os
 __all__ = ["write_views", "VIEWS", "FAILING", "headline", "label", "share_text", "is_failure",
            "write_text"]
 
-from .verdicts import AGAINST as FAILING, judge, label, word
+from .verdicts import AGAINST as FAILING, judge, label, share_text, word
 
 #: file name -> module that renders it (each has ``render(doc, report_dir) -> str``)
 VIEWS = {"report.html": "html", "summary.md": "markdown", "junit.xml": "junit"}
@@ -28,20 +28,6 @@ def headline(doc: dict) -> str:
     """CONFORMANT, NOT CONFORMANT, INTERNAL ERROR, NOTHING CERTIFIED or PARTIAL
     (:func:`convwitness.report.verdicts.judge`)."""
     return judge(doc).headline
-
-
-def share_text(v) -> str:
-    """A share of the bound (error/bound) as people read it."""
-    if v is None:
-        return "-"
-    if v == "inf" or float(v) >= 1e300:      # the runner stores inf as 1e300 in per-example lists
-        return "inf"
-    v = float(v)
-    if v == 0:
-        return "0"
-    if v >= 1e4:
-        return f"{v:.2e}"
-    return f"{v:.3g}"
 
 
 def write_text(path: str, text: str) -> str:

@@ -60,9 +60,22 @@ def label(r: dict) -> str:
     return _LABEL.get(w, w)
 
 
+def share_text(v) -> str:
+    """A share of the bound (error/bound) as people read it."""
+    if v is None:
+        return "-"
+    if v == "inf" or float(v) >= 1e300:      # the runner stores inf as 1e300 in per-example lists
+        return "inf"
+    v = float(v)
+    if v == 0:
+        return "0"
+    if v >= 1e4:
+        return f"{v:.2e}"
+    return f"{v:.3g}"
+
+
 def worst_text(r: dict) -> str:
     """The worst share of the bound of one result; "–" where nothing was checked."""
-    from .outputs import share_text
     if word(r) in _NOT_CHECKED or not r.get("examples"):
         return "–"
     return share_text(r["worst_share"])

@@ -20,7 +20,6 @@ The protocol is documented in docs/wire-protocol.md; the codec is
 from __future__ import annotations
 
 import fcntl
-import math
 import os
 import shlex
 import signal
@@ -32,25 +31,17 @@ import numpy as np
 
 from ...geometry.capabilities import Capabilities
 from ...errors import (AdapterCrashed, AdapterLoadError, AdapterOutputError, AdapterRaised,
-                     AdapterTimeout, ConvWitnessError)
+                       AdapterTimeout)
 from ..limits import parse_bytes
-from .codec import (PROTOCOL, Reader, Region, WireEOF, WireFormatError, WireTimeout,
-                         encode, read_message, write_all)
+from .codec import (Reader, Region, WireEOF, WireFormatError, WireTimeout, encode,
+                    read_message, write_all)
+from .messages import _Failure, check_hello, check_reply
+from .messages import output_bytes as _output_bytes, params as _params
 
 __all__ = ["ExecAdapter"]
 
 _PIPE_SIZE = 1 << 20          # F_SETPIPE_SZ: fewer wake-ups for large inline arrays
 _F_SETPIPE_SZ = 1031
-_OUTPUTS = {"forward": (("y",), ()), "transposed": (("y",), ()),
-            "backward": (("grad_x", "grad_w"), ("grad_b",))}
-
-
-class _Failure(Exception):
-    """A protocol failure before it is given its adapter error class."""
-
-    def __init__(self, cls, message, traceback_text=""):
-        super().__init__(message)
-        self.cls, self.traceback_text = cls, traceback_text
 
 
 class _State:
@@ -171,31 +162,7 @@ class ExecAdapter:
             self._setup_region()
 
     def _check_hello(self, h: dict) -> Capabilities:
-        where = "hello (message 1)"
-        if h.get("type") != "hello":
-            raise _Failure(AdapterOutputError, f"{where}: header field type is {h.get('type')!r}; "
-                           "expected 'hello' as the program's first message")
-        if h.get("protocol") != PROTOCOL:
-            raise _Failure(AdapterOutputError, f"{where}: header field protocol is "
-                           f"{h.get('protocol')!r}; this client speaks {PROTOCOL!r}")
-        if not isinstance(h.get("name"), str) or not h["name"]:
-            raise _Failure(AdapterOutputError, f"{where}: header field name must be a non-empty "
-                           f"string, got {h.get('name')!r}")
-        h["version"] = str(h.get("version", "") or "")
-        carriers = h.get("carriers", ["inline"])
-        if not isinstance(carriers, list):
-            raise _Failure(AdapterOutputError, f"{where}: header field carriers must be a list, "
-                           f"got {carriers!r}")
-        caps = h.get("capabilities")
-        if not isinstance(caps, dict):
-            raise _Failure(AdapterOutputError, f"{where}: header field capabilities must be an "
-                           f"object of Capabilities fields, got {caps!r}")
-        try:
-            declared = Capabilities.from_dict(caps)
-            # a foreign program has no methods to look at: without `passes` it claims forward only
-            return declared if declared.passes is not None else declared.replace(passes={"forward"})
-        except (ConvWitnessError, TypeError, ValueError) as exc:
-            raise _Failure(AdapterOutputError, f"{where}: header field capabilities: {exc}") from None
+        return check_hello(h)
 
     def _setup_region(self):
         region = Region.create(1 << 20)
@@ -340,37 +307,7 @@ class ExecAdapter:
             raise exc.cls(f"{label}: {exc}", output=self.drain_output()) from None
 
     def _check_reply(self, reply: dict, out: dict, no: int, method: str) -> dict:
-        where = f"reply (message {no})"
-
-        def bad(text):
-            self._state.stop()
-            raise _Failure(AdapterOutputError, f"{where}: {text}; the program was stopped and is "
-                           "restarted for the next call")
-
-        if reply.get("id") != self._ids:
-            bad(f"header field id is {reply.get('id')!r}, expected {self._ids} (the id of the request)")
-        kind = reply.get("type")
-        if kind == "error":
-            message = reply.get("message")
-            if not isinstance(message, str):
-                bad(f"header field message of an error reply must be a string, got {message!r}")
-            if reply.get("kind", "raised") == "output":
-                raise _Failure(AdapterOutputError, f"the program reports an unusable result: {message}")
-            tb = reply.get("traceback", "")
-            raise _Failure(AdapterRaised, f"the program replied with an error: {message}",
-                           tb if isinstance(tb, str) else "")
-        if kind != "result":
-            bad(f"header field type is {kind!r}; expected 'result' or 'error'")
-        required, optional = _OUTPUTS[method]
-        for i, name in enumerate(out):
-            if name not in required and name not in optional:
-                bad(f"header field arrays[{i}].name is {name!r}; a {method} reply carries "
-                    f"{', '.join(required + optional)}")
-        missing = [n for n in required if n not in out]
-        if missing:
-            bad(f"header field arrays lacks {', '.join(missing)}; a {method} reply carries "
-                f"{', '.join(required)}{' (and ' + ', '.join(optional) + ')' if optional else ''}")
-        return out
+        return check_reply(reply, out, no, method, self._ids, self._state.stop)
 
     def forward(self, x, w, b=None, *, stride, padding, dilation, groups, layout="channels_first"):
         p = _params(stride, padding, dilation, groups, layout, None)
@@ -386,36 +323,3 @@ class ExecAdapter:
                    layout="channels_first"):
         p = _params(stride, padding, dilation, groups, layout, output_padding)
         return self._call("transposed", [("x", x), ("w", w), ("b", b)], p)["y"]
-
-
-def _params(stride, padding, dilation, groups, layout, output_padding) -> dict:
-    nd = len(stride)
-    return {"stride": [int(s) for s in stride],
-            "padding": [[int(lo), int(hi)] for lo, hi in padding],
-            "dilation": [int(d) for d in dilation], "groups": int(groups), "layout": layout,
-            "output_padding": [int(o) for o in (output_padding or (0,) * nd)]}
-
-
-def _output_bytes(method: str, arrays: dict, p: dict) -> int:
-    """Bytes of the reply's arrays (to size the region); 0 where it cannot be told."""
-    try:
-        x, w = arrays["x"], arrays["w"]
-        if method == "backward":
-            return sum(a.nbytes + 64 for a in arrays.values())
-        cl = p["layout"] == "channels_last"
-        size, kernel = (x.shape[1:-1], w.shape[1:-1]) if cl else (x.shape[2:], w.shape[2:])
-        out = []
-        for i, (L, k) in enumerate(zip(size, kernel)):
-            s, d, (lo, hi) = p["stride"][i], p["dilation"][i], p["padding"][i]
-            e = d * (k - 1) + 1
-            if method == "forward":
-                out.append((L + lo + hi - e) // s + 1)
-            else:
-                out.append(s * (L - 1) + e + p["output_padding"][i] - lo - hi)
-        if method == "forward":
-            channels = w.shape[0]
-        else:
-            channels = (w.shape[-1] if cl else w.shape[1]) * p["groups"]
-        return x.shape[0] * channels * math.prod(max(o, 0) for o in out) * x.dtype.itemsize + 64
-    except (KeyError, IndexError, TypeError, ZeroDivisionError):
-        return 0
