@@ -258,11 +258,20 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         case, what = tally.failure
         if isinstance(what, Evidence):
             res.worst_share = max(res.worst_share, float(what.share))
+        minimal = None
+        if shrink:                      # the local pass after hypothesis's shrinking
+            from .minimize import minimize
+            minimal = minimize(adapter, inv, case, what, profile)
+            case, what = minimal.case, minimal.what
+            res.message = what.message if isinstance(what, Evidence) else str(what)
         if report_dir:
             res.witness = save_witness(case, inv, res, report_dir, seed, adapter, replay_hint)
         else:
             res.witness = {"spec": case.spec.to_dict(), "geometry": case.spec.describe(),
                            "kind": case.kind}
+        if minimal is not None:
+            res.witness.update(minimal=minimal.minimal, minimization=minimal.note)
+    res.duration_s = time.perf_counter() - t0
     return res
 
 

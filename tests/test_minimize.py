@@ -1,0 +1,157 @@
+"""1-minimal witnesses (run/minimize.py).
+
+The notion: a failing input is 1-minimal when removing any single unit of it makes the
+failure go away (Zeller & Hildebrandt 2002, "Simplifying and Isolating
+Failure-Inducing Input", IEEE TSE 28(2), ddmin's 1-minimality -- recalled from
+memory). Here a unit is one step of one geometry parameter toward its smallest valid
+value. The expected witnesses below are the ones issue 10 names ("a doubled input
+gradient"; "a port that hangs on strided calls ... where N=1 C=1->1 S=1 k=1 s=2 would
+do") and follow from the planted defects by construction, not from convwitness.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from convwitness import load_adapter
+from convwitness.adapters.reference import ReferenceAdapter
+from convwitness.cases.case import Case
+from convwitness.cases.profiles import get_profile
+from convwitness.cases.values import fill
+from convwitness.errors import SpecError
+from convwitness.invariants import Context, get
+from convwitness.run.minimize import minimize, neighbours
+from convwitness.run.runner import run_invariant
+
+QUICK = get_profile("quick")
+
+
+class DoubledInputGradient(ReferenceAdapter):
+    name = "doubled-input-gradient"
+
+    def backward(self, x, w, b, grad_y, **kw):
+        gx, gw, gb = super().backward(x, w, b, grad_y, **kw)
+        return 2 * gx, gw, gb
+
+
+class RefusesStrides(ReferenceAdapter):
+    """Raises on every strided call (a stand-in for the issue's hanging port: the same
+    path, without spending a call timeout per replay)."""
+    name = "refuses-strides"
+
+    def forward(self, x, w, b, *, stride, **kw):
+        if any(s > 1 for s in stride):
+            raise RuntimeError("strided kernels missing")
+        return super().forward(x, w, b, stride=stride, **kw)
+
+
+def _one_step_smaller(spec):
+    """Every geometry one step smaller in one parameter, enumerated plainly (the test's
+    own list, independent of run/minimize.py's): each int field minus one, each
+    per-axis entry minus one, each padding entry one step toward 0."""
+    out = []
+    for f in ("batch", "in_channels", "out_channels", "groups"):
+        out.append({f: getattr(spec, f) - 1})
+    for f in ("input_size", "kernel_size", "stride", "dilation", "output_padding"):
+        for i, v in enumerate(getattr(spec, f)):
+            seq = list(getattr(spec, f))
+            seq[i] = v - 1
+            out.append({f: tuple(seq)})
+    for i, (lo, hi) in enumerate(spec.padding):
+        for j, p in enumerate((lo, hi)):
+            if p:
+                pads = [list(q) for q in spec.padding]
+                pads[i][j] = p - (1 if p > 0 else -1)
+                out.append({"padding": tuple(map(tuple, pads))})
+    specs = []
+    for ch in out:
+        try:
+            specs.append(spec.replace(**ch))
+        except SpecError:
+            continue
+    # the space drawn from: at least one sample, one channel and one position per axis
+    # (zero-sized tensors are a separate feature with invariants of their own)
+    return [s for s in specs if s.batch >= 1 and min(s.in_channels, s.out_channels) >= 1
+            and min(s.input_size) >= 1]
+
+
+def _witness_case(res):
+    from convwitness.geometry.spec import ConvSpec
+    spec = ConvSpec.from_dict(res.witness["spec"])
+    return spec
+
+
+def test_doubled_input_gradient_shrinks_to_the_smallest_convolution():
+    a = load_adapter(DoubledInputGradient())
+    res = run_invariant(a, get("grad_input.reference"), QUICK, seed=0, shrink=True)
+    assert res.verdict == "fail"
+    spec = _witness_case(res)
+    # any convolution shows a doubled gradient, so the witness is the smallest one
+    assert (spec.batch, spec.in_channels, spec.out_channels, spec.groups) == (1, 1, 1, 1)
+    assert set(spec.input_size) == {1} and set(spec.kernel_size) == {1}
+    assert set(spec.stride) == {1} and set(spec.dilation) == {1}
+    assert all(p == (0, 0) for p in spec.padding)
+    assert res.witness["minimal"] is True
+
+
+def test_port_failing_on_strides_shrinks_to_one_stride_of_two():
+    a = load_adapter(RefusesStrides())
+    res = run_invariant(a, get("forward.reference"), QUICK, seed=0, shrink=True)
+    assert res.verdict == "error"
+    spec = _witness_case(res)
+    assert (spec.batch, spec.in_channels, spec.out_channels, spec.groups) == (1, 1, 1, 1)
+    assert sorted(spec.stride)[-1] == 2 and sorted(spec.stride)[:-1] == [1] * (spec.ndim - 1)
+    assert set(spec.kernel_size) == {1} and set(spec.input_size) == {1}
+    assert res.witness["minimal"] is True
+
+
+@pytest.mark.parametrize("adapter_cls,inv_id", [(DoubledInputGradient, "grad_input.reference"),
+                                                (RefusesStrides, "forward.reference")])
+def test_witness_is_one_minimal_by_plain_enumeration(adapter_cls, inv_id):
+    """Every one-step smaller geometry the adapter claims passes the invariant."""
+    a = load_adapter(adapter_cls())
+    inv = get(inv_id)
+    res = run_invariant(a, inv, QUICK, seed=0, shrink=True)
+    spec = _witness_case(res)
+    for smaller in _one_step_smaller(spec):
+        if not a.capabilities.admits(smaller):
+            continue
+        arrays = fill(smaller, res.witness["kind"], 0)
+        case = Case(smaller, arrays["x"], arrays["w"], arrays["b"], arrays["grad_y"], res.witness["kind"])
+        try:
+            ok = inv.check(a, case, Context()).ok
+        except Exception:                      # noqa: BLE001 -- a raise is a failure too
+            ok = False
+        assert ok, f"{smaller.describe()} still fails, so {spec.describe()} is not 1-minimal"
+
+
+def test_time_cap_is_recorded():
+    """A cap of 0 s stops the pass before its first replay: the witness says so."""
+    a = load_adapter(DoubledInputGradient())
+    from convwitness.geometry.spec import ConvSpec
+    spec = ConvSpec(2, 3, 3, (5,), (3,), dtype="float64")
+    arrays = fill(spec, "uniform", 1)
+    case = Case(spec, arrays["x"], arrays["w"], arrays["b"], arrays["grad_y"], "uniform", 1)
+    inv = get("grad_input.reference")
+    ev = inv.check(a, case, Context())
+    assert not ev.ok
+    m = minimize(a, inv, case, ev, QUICK, cap_s=0.0)
+    assert m.minimal is False and "time cap" in m.note and m.case is case
+
+
+def test_neighbours_move_one_parameter_one_step():
+    from convwitness.geometry.spec import ConvSpec
+    spec = ConvSpec(2, 4, 6, (7, 5), (3, 2), stride=(2, 1), padding=((1, -1), (0, 2)),
+                    dilation=(1, 2), groups=2)
+    for name, n in neighbours(spec):
+        diffs = [f for f in ("batch", "in_channels", "out_channels", "groups", "input_size",
+                             "kernel_size", "stride", "dilation", "padding", "output_padding")
+                 if getattr(n, f) != getattr(spec, f)]
+        if name == "groups":
+            assert n.groups < spec.groups
+        else:
+            assert len(diffs) == 1, (name, diffs)
+    assert {nm for nm, _ in neighbours(spec)} >= {"batch", "in_channels", "out_channels",
+                                                   "input_size[0]", "kernel_size[0]", "stride[0]",
+                                                   "dilation[1]", "padding[0].before",
+                                                   "padding[0].after", "padding[1].after"}
