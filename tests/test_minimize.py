@@ -75,34 +75,29 @@ def _one_step_smaller(spec):
             and min(s.input_size) >= 1]
 
 
-def _witness_case(res):
+def _witness_spec(adapter_obj, inv_id, verdict):
+    """The witness geometry of a shrunk run (checking its verdict and 1-minimal flag)."""
     from convwitness.geometry.spec import ConvSpec
-    spec = ConvSpec.from_dict(res.witness["spec"])
-    return spec
+    res = run_invariant(load_adapter(adapter_obj), get(inv_id), QUICK, seed=0, shrink=True)
+    assert res.verdict == verdict and res.witness["minimal"] is True, res.witness
+    return ConvSpec.from_dict(res.witness["spec"])
+
+
+def _unit(spec):
+    return (spec.batch, spec.in_channels, spec.out_channels, spec.groups, set(spec.input_size),
+            set(spec.kernel_size), set(spec.dilation), set(spec.padding))
 
 
 def test_doubled_input_gradient_shrinks_to_the_smallest_convolution():
-    a = load_adapter(DoubledInputGradient())
-    res = run_invariant(a, get("grad_input.reference"), QUICK, seed=0, shrink=True)
-    assert res.verdict == "fail"
-    spec = _witness_case(res)
+    spec = _witness_spec(DoubledInputGradient(), "grad_input.reference", "fail")
     # any convolution shows a doubled gradient, so the witness is the smallest one
-    assert (spec.batch, spec.in_channels, spec.out_channels, spec.groups) == (1, 1, 1, 1)
-    assert set(spec.input_size) == {1} and set(spec.kernel_size) == {1}
-    assert set(spec.stride) == {1} and set(spec.dilation) == {1}
-    assert all(p == (0, 0) for p in spec.padding)
-    assert res.witness["minimal"] is True
+    assert _unit(spec) == (1, 1, 1, 1, {1}, {1}, {1}, {(0, 0)}) and set(spec.stride) == {1}
 
 
 def test_port_failing_on_strides_shrinks_to_one_stride_of_two():
-    a = load_adapter(RefusesStrides())
-    res = run_invariant(a, get("forward.reference"), QUICK, seed=0, shrink=True)
-    assert res.verdict == "error"
-    spec = _witness_case(res)
-    assert (spec.batch, spec.in_channels, spec.out_channels, spec.groups) == (1, 1, 1, 1)
-    assert sorted(spec.stride)[-1] == 2 and sorted(spec.stride)[:-1] == [1] * (spec.ndim - 1)
-    assert set(spec.kernel_size) == {1} and set(spec.input_size) == {1}
-    assert res.witness["minimal"] is True
+    spec = _witness_spec(RefusesStrides(), "forward.reference", "error")
+    assert _unit(spec) == (1, 1, 1, 1, {1}, {1}, {1}, {(0, 0)})
+    assert sorted(spec.stride) == [1] * (spec.ndim - 1) + [2]
 
 
 @pytest.mark.parametrize("adapter_cls,inv_id", [(DoubledInputGradient, "grad_input.reference"),
@@ -112,7 +107,8 @@ def test_witness_is_one_minimal_by_plain_enumeration(adapter_cls, inv_id):
     a = load_adapter(adapter_cls())
     inv = get(inv_id)
     res = run_invariant(a, inv, QUICK, seed=0, shrink=True)
-    spec = _witness_case(res)
+    from convwitness.geometry.spec import ConvSpec
+    spec = ConvSpec.from_dict(res.witness["spec"])
     for smaller in _one_step_smaller(spec):
         if not a.capabilities.admits(smaller):
             continue

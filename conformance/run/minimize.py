@@ -133,17 +133,13 @@ def neighbours(spec: ConvSpec, caps=None, needs=None) -> list[tuple[str, ConvSpe
 
 
 def _verdict(what) -> str:
+    """The verdict a check's outcome stands for (the runner's own mapping)."""
+    from .runner import _verdict_of
     if isinstance(what, Evidence):
         return "pass" if what.ok else "fail"
-    if isinstance(what, AdapterOutputError):
-        return "fail"
-    if isinstance(what, AdapterCrashed):
-        return "crash"
-    if isinstance(what, AdapterTimeout):
-        return "timeout"
-    if isinstance(what, AdapterRaised):
-        return "error"
-    return "internal"
+    if not isinstance(what, _ADAPTER_FAULTS):
+        return "internal"
+    return _verdict_of(what)
 
 
 def _replay(adapter, inv, case: Case, profile):
