@@ -33,7 +33,7 @@ from ..geometry.spec import ConvSpec
 from ..invariants import Context
 from ..invariants.evidence import Evidence
 
-__all__ = ["Minimized", "neighbours", "minimize", "time_cap"]
+__all__ = ["Minimized", "neighbours", "minimize", "time_cap", "outcome_verdict"]
 
 _ADAPTER_FAULTS = (AdapterRaised, AdapterOutputError, AdapterCrashed, AdapterTimeout)
 
@@ -132,7 +132,7 @@ def neighbours(spec: ConvSpec, caps=None, needs=None) -> list[tuple[str, ConvSpe
     return out
 
 
-def _verdict(what) -> str:
+def outcome_verdict(what) -> str:
     """The verdict a check's outcome stands for (the runner's own mapping)."""
     from .runner import _verdict_of
     if isinstance(what, Evidence):
@@ -153,7 +153,7 @@ def _replay(adapter, inv, case: Case, profile):
 def minimize(adapter, inv, case: Case, what, profile, *, cap_s: float | None = None,
              needs=None) -> Minimized:
     """Walk from the failing ``case`` (whose outcome is ``what``) to a 1-minimal one."""
-    want = _verdict(what)
+    want = outcome_verdict(what)
     cap = time_cap(profile.budget_s) if cap_s is None else float(cap_s)
     if want in ("pass", "internal"):
         return Minimized(case, what, False, 0, 0, "not minimized: the case does not fail "
@@ -175,7 +175,7 @@ def minimize(adapter, inv, case: Case, what, profile, *, cap_s: float | None = N
                         seed=case.seed)
             tried += 1
             got = _replay(adapter, inv, cand, profile)
-            if _verdict(got) == want:
+            if outcome_verdict(got) == want:
                 case, what, found = cand, got, True
                 steps += 1
                 moved.append(name)
