@@ -135,11 +135,14 @@ def test_time_cap_is_recorded():
     assert m.minimal is False and "time cap" in m.note and m.case is case
 
 
-def test_neighbours_move_one_parameter_one_step():
+def test_neighbours_move_one_parameter_toward_its_least_value():
+    """Each neighbour moves one parameter (groups: with the channels per group) toward
+    its least value, and every one-step move of the plain enumeration is among them."""
     from convwitness.geometry.spec import ConvSpec
     spec = ConvSpec(2, 4, 6, (7, 5), (3, 2), stride=(2, 1), padding=((1, -1), (0, 2)),
                     dilation=(1, 2), groups=2)
-    for name, n in neighbours(spec):
+    got = neighbours(spec)
+    for name, n in got:
         diffs = [f for f in ("batch", "in_channels", "out_channels", "groups", "input_size",
                              "kernel_size", "stride", "dilation", "padding", "output_padding")
                  if getattr(n, f) != getattr(spec, f)]
@@ -147,7 +150,9 @@ def test_neighbours_move_one_parameter_one_step():
             assert n.groups < spec.groups
         else:
             assert len(diffs) == 1, (name, diffs)
-    assert {nm for nm, _ in neighbours(spec)} >= {"batch", "in_channels", "out_channels",
-                                                   "input_size[0]", "kernel_size[0]", "stride[0]",
-                                                   "dilation[1]", "padding[0].before",
-                                                   "padding[0].after", "padding[1].after"}
+            old, new = getattr(spec, diffs[0]), getattr(n, diffs[0])
+            flat = lambda t: [abs(v) for v in (sum(t, ()) if diffs[0] == "padding" else (t if isinstance(t, tuple) else (t,)))]
+            assert sum(flat(new)) < sum(flat(old)), (name, old, new)
+    specs = {n for _, n in got}
+    one_step = [s for s in _one_step_smaller(spec) if s.groups == spec.groups]
+    assert one_step and all(s in specs for s in one_step), [s.describe() for s in one_step if s not in specs]

@@ -19,6 +19,10 @@ drawn afresh with the failing case's value kind and seed (``cases.values.fill``)
 it "still fails" when the invariant gives the same verdict (fail, error, crash or
 timeout) on it. The pass takes the first failing neighbour and starts again, until no
 neighbour fails (1-minimal) or the time cap is reached (the witness says so).
+Besides the one-step moves it tries, first, each parameter at its smallest value and
+then moved by a half, a quarter, ... of the way: they reach the same end in fewer
+failing replays (a port that hangs costs a call timeout per failing replay);
+1-minimality is still decided by the one-step moves, which are always among those tried.
 """
 from __future__ import annotations
 
@@ -57,42 +61,60 @@ def _divisors_below(g: int, cin: int, cout: int) -> list[int]:
     return [d for d in range(g - 1, 0, -1) if cin % d == 0 and cout % d == 0]
 
 
+def _toward(v: int, least: int) -> list[int]:
+    """Values from ``v`` toward ``least``, far to near: the least itself, then v moved by
+    half the distance, a quarter, ..., and one step last (distinct, never ``v``)."""
+    if v == least:
+        return []
+    sign = 1 if v > least else -1
+    dist = abs(v - least)
+    out, d = [least], dist // 2
+    while d >= 1:
+        out.append(v - sign * d)
+        d //= 2
+    if out[-1] != v - sign:
+        out.append(v - sign)
+    seen = []
+    for c in out:
+        if c not in seen:
+            seen.append(c)
+    return seen
+
+
 def _moves(spec: ConvSpec, batch_min: int):
-    """(parameter name, changes) for each one-step move toward the smallest value."""
+    """(parameter name, changes) for each move of one parameter toward its smallest
+    value, far to near (the one-step moves decide 1-minimality; the longer ones only
+    get there in fewer failing replays, which counts where one costs a call timeout)."""
     g = spec.groups
-    if spec.batch > max(1, batch_min):
-        yield "batch", {"batch": spec.batch - 1}
+    if spec.batch >= 1:
+        for v in _toward(spec.batch, max(1, batch_min)):
+            yield "batch", {"batch": v}
     if g > 1:
         per_in, per_out = spec.in_channels // g, spec.out_channels // g
-        yield "groups", {"groups": g - 1, "in_channels": per_in * (g - 1),
-                         "out_channels": per_out * (g - 1)}
+        for v in _toward(g, 1):
+            yield "groups", {"groups": v, "in_channels": per_in * v, "out_channels": per_out * v}
         smaller = _divisors_below(g, spec.in_channels, spec.out_channels)
         if smaller:
             yield "groups", {"groups": smaller[0]}
-    if spec.in_channels - g >= g:
-        yield "in_channels", {"in_channels": spec.in_channels - g}
-    if spec.out_channels - g >= g:
-        yield "out_channels", {"out_channels": spec.out_channels - g}
+    for v in _toward(spec.in_channels // g, 1) if spec.in_channels >= g else ():
+        yield "in_channels", {"in_channels": v * g}
+    for v in _toward(spec.out_channels // g, 1) if spec.out_channels >= g else ():
+        yield "out_channels", {"out_channels": v * g}
     for i in range(spec.ndim):
         def axis(field, value, i=i):
             seq = list(getattr(spec, field))
             seq[i] = value
             return {field: tuple(seq)}
-        if spec.input_size[i] > 1:
-            yield f"input_size[{i}]", axis("input_size", spec.input_size[i] - 1)
-        if spec.kernel_size[i] > 1:
-            yield f"kernel_size[{i}]", axis("kernel_size", spec.kernel_size[i] - 1)
-        if spec.stride[i] > 1:
-            yield f"stride[{i}]", axis("stride", spec.stride[i] - 1)
-        if spec.dilation[i] > 1:
-            yield f"dilation[{i}]", axis("dilation", spec.dilation[i] - 1)
+        for field, least in (("input_size", 1), ("kernel_size", 1), ("stride", 1),
+                             ("dilation", 1), ("output_padding", 0)):
+            if getattr(spec, field)[i] >= least:
+                for v in _toward(getattr(spec, field)[i], least):
+                    yield f"{field}[{i}]", axis(field, v)
         lo, hi = spec.padding[i]
-        if lo:
-            yield f"padding[{i}].before", axis("padding", (lo - (1 if lo > 0 else -1), hi))
-        if hi:
-            yield f"padding[{i}].after", axis("padding", (lo, hi - (1 if hi > 0 else -1)))
-        if spec.output_padding[i] > 0:
-            yield f"output_padding[{i}]", axis("output_padding", spec.output_padding[i] - 1)
+        for v in _toward(lo, 0):
+            yield f"padding[{i}].before", axis("padding", (v, hi))
+        for v in _toward(hi, 0):
+            yield f"padding[{i}].after", axis("padding", (lo, v))
 
 
 def _inside(spec: ConvSpec, needs) -> bool:
