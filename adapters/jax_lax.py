@@ -38,8 +38,9 @@
   ``jax.subnormal_flush``, ``python scripts/library_findings.py jax.subnormal_flush``,
   AMD EPYC with AVX-512); and a float64
   grouped convolution lets a NaN/inf of one group reach the outputs of the others
-  (``ieee_special`` is not claimed; seen with jax 0.10.2 CPU, machine not recorded,
-  not yet in scripts/library_findings.py).
+  (``ieee_special`` is not claimed; seen with jax 0.10.2 CPU, machine and geometry not
+  recorded; ``python scripts/library_findings.py jax.nan_crosses_groups`` tries a simple
+  case, which does not show it on AMD EPYC with AVX-512: unconfirmed).
 * **compilation** -- each geometry (strides, padding, dilation, groups, layout, bias)
   gets one ``jax.jit``-ed function, cached in the adapter; jit caches one compiled
   executable per array shape and dtype, so repeated value draws of one geometry

@@ -25,7 +25,9 @@ version 10) and run on the CPU execution provider:
 * output_padding is passed on but not claimed: onnxruntime refuses
   ``output_padding >= stride`` ("output_padding may be too large for stride"), which
   is a valid geometry when ``dilation > output_padding``; Capabilities cannot yet
-  claim only ``output_padding < stride``.
+  claim only ``output_padding < stride``. (Finding ``onnxruntime.output_padding_refused``:
+  ``python scripts/library_findings.py onnxruntime.output_padding_refused``; seen with
+  onnxruntime 1.32.0 CPU on AMD EPYC with AVX-512.)
 * a zero-length spatial axis (made valid by padding) is refused by onnxruntime's
   Conv ("Invalid input shape").
 """

@@ -35,7 +35,7 @@ class Finding:
     claim: str
     code: str               # prints BUG or OK (or dies, for kind "crash")
     kind: str = "value"     # "value" | "crash"
-    status: str = "current"  # "current" | "withdrawn"
+    status: str = "current"  # "current" | "withdrawn" | "unconfirmed"
     seen: str = ""          # where it was seen to hold (or not)
 
 
@@ -150,6 +150,41 @@ FINDINGS = (
         y = np.asarray(lax.conv_general_dilated(x, w, (1, 1), [(0, 0), (0, 0)]))
         print("BUG" if float(y.ravel()[0]) == 0.0 else "OK", float(y.ravel()[0]))
         """, seen="jax/jaxlib 0.10.2 CPU, AMD EPYC with AVX-512"),
+    Finding(
+        "jax.nan_crosses_groups", "jax",
+        "a float64 grouped convolution lets a NaN of one group reach the outputs of another",
+        """
+        import numpy as np, jax
+        jax.config.update("jax_enable_x64", True)
+        from jax import lax
+        x = np.ones((1, 4, 6, 6)); x[0, 0, 2, 2] = np.nan          # NaN in group 0 only
+        w = np.ones((4, 2, 3, 3))
+        y = np.asarray(lax.conv_general_dilated(x, w, (1, 1), [(0, 0), (0, 0)], feature_group_count=2))
+        print("BUG" if np.isnan(y[0, 2:]).any() else "OK", int(np.isnan(y[0, 2:]).sum()), "NaN in group 1")
+        """, status="unconfirmed",
+        seen="reported by a convwitness run with jax 0.10.2 CPU (machine and geometry not "
+             "recorded); this program does not show it on AMD EPYC with AVX-512"),
+    Finding(
+        "onnxruntime.output_padding_refused", "onnxruntime",
+        "ConvTranspose refuses output_padding >= stride although the geometry is valid when "
+        "the dilation is larger (stride 1, dilation 2, output_padding 1)",
+        """
+        import numpy as np, onnxruntime as ort
+        from onnx import helper, TensorProto
+        node = helper.make_node("ConvTranspose", ["X", "W"], ["Y"], strides=[1], dilations=[2],
+                                output_padding=[1], pads=[0, 0])
+        io = lambda n: helper.make_tensor_value_info(n, TensorProto.FLOAT, None)
+        m = helper.make_model(helper.make_graph([node], "g", [io("X"), io("W")], [io("Y")]),
+                              opset_imports=[helper.make_opsetid("", 22)])
+        m.ir_version = 10
+        ort.set_default_logger_severity(4)
+        s = ort.InferenceSession(m.SerializeToString(), providers=["CPUExecutionProvider"])
+        try:
+            y = s.run(None, {"X": np.ones((1, 2, 4), np.float32), "W": np.ones((2, 3, 2), np.float32)})[0]
+            print("OK", y.shape)
+        except Exception as exc:
+            print("BUG", str(exc).splitlines()[0].split("Status Message:")[-1].strip()[:140])
+        """, seen="onnxruntime 1.32.0 CPU, AMD EPYC with AVX-512"),
 )
 
 
