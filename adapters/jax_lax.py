@@ -19,7 +19,9 @@
 * **backward** is offered but NOT claimed: the input gradient that ``jax.vjp`` builds
   for a strided convolution is such an lhs-dilated convolution, and XLA aborts the
   process compiling it for some small geometries (e.g. x ``(1, 1, 2, 4)``, w
-  ``(1, 1, 3, 2)``, stride ``(1, 2)``, padding ``((1, 1), (1, 1))``, float32 and float64).
+  ``(1, 1, 3, 2)``, stride ``(1, 2)``, padding ``((1, 1), (1, 1))``, float32 and float64;
+  finding ``jax.vjp_strided_abort``: ``python scripts/library_findings.py
+  jax.vjp_strided_abort``, seen with jax/jaxlib 0.10.2 on AMD EPYC, 1 and 2 threads).
 * **precision** -- ``precision=lax.Precision.HIGHEST`` is passed, so float32 is
   computed in float32 on every platform (on CPU it is also the default).
 * **float64** -- the constructor turns on ``jax_enable_x64`` (a process-wide jax
@@ -28,11 +30,17 @@
   a float32 2-D convolution with one axis padded ``(-p, +p)``, ``p > 0``, returns
   garbage (values read from outside the input: huge numbers, inf, NaN) whenever the
   kernel is wider than 1 on some axis; float64 is right. Crop the input instead.
+  (Finding ``jax.negative_padding_float32``: ``python scripts/library_findings.py
+  jax.negative_padding_float32``; seen on AMD EPYC with AVX-512, for some value draws.)
 * **not covered by the declared model** (found by convwitness, jax 0.10.2 CPU): XLA
   flushes subnormal inputs and results to zero (float32 and float64), so the
-  gradual-underflow terms of the bound do not hold for subnormal data; and a float64
+  gradual-underflow terms of the bound do not hold for subnormal data (finding
+  ``jax.subnormal_flush``, ``python scripts/library_findings.py jax.subnormal_flush``,
+  AMD EPYC with AVX-512); and a float64
   grouped convolution lets a NaN/inf of one group reach the outputs of the others
-  (``ieee_special`` is not claimed).
+  (``ieee_special`` is not claimed; seen with jax 0.10.2 CPU, machine and geometry not
+  recorded; ``python scripts/library_findings.py jax.nan_crosses_groups`` tries a simple
+  case, which does not show it on AMD EPYC with AVX-512: unconfirmed).
 * **compilation** -- each geometry (strides, padding, dilation, groups, layout, bias)
   gets one ``jax.jit``-ed function, cached in the adapter; jit caches one compiled
   executable per array shape and dtype, so repeated value draws of one geometry

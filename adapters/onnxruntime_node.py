@@ -25,7 +25,9 @@ version 10) and run on the CPU execution provider:
 * output_padding is claimed below the stride only (constraint
   ``output_padding<stride``): onnxruntime refuses ``output_padding >= stride``
   ("output_padding may be too large for stride"), which is a valid geometry when
-  ``dilation > output_padding`` (seen with onnxruntime 1.32.0, CPU, Python 3.11:
+  ``dilation > output_padding`` (finding ``onnxruntime.output_padding_refused``:
+  ``python scripts/library_findings.py onnxruntime.output_padding_refused``; seen with
+  onnxruntime 1.32.0 CPU on AMD EPYC with AVX-512, Python 3.11; and
   ``python3 -m pytest tests/test_claims.py -k onnxruntime``).
 * a zero-length spatial axis (made valid by padding) is refused by onnxruntime's
   Conv ("Invalid input shape").

@@ -20,16 +20,24 @@ What the adapter does the way a user would, and what it leaves to torch:
   last spatial axis that a strided window covers once (output size 1 there), e.g.
   x ``(2, 12, 3, 1)`` NHWC, w ``(1, 1, 3, 1)``, stride ``(1, 2)``: outputs miss terms or come
   back 0 (float64 reference: all 3 for ones); ``.contiguous(memory_format=...)`` does
-  not help, channels first is right.
+  not help, channels first is right. Where it holds (finding ``torch.channels_last_c1``,
+  reproduce with ``python scripts/library_findings.py torch.channels_last_c1``): AMD
+  EPYC with AVX-512, torch 2.13.0+cpu, oneDNN v3.12.0, at 2 intra-op threads; not at 1
+  thread, nor with ``ONEDNN_MAX_CPU_ISA=AVX2``; also reported on an AVX2 machine.
 * **backward** -- ``torch.autograd.grad`` of the forward graph (``F.pad``
   included) with the given upstream gradient.
 * **dtypes** -- float64, float32 and float16 for ``torch``; bfloat16 (ml_dtypes) in
-  ``torch-bf16``, kept apart because torch's bfloat16 conv3d has a real bug (see
-  ``torch_bf16``), so that ``torch`` certifies what works and ``torch-bf16`` reports what
-  does not. float16 stays claimed although torch 2.13.0 CPU dies with SIGSEGV on one
+  ``torch-bf16``. (An earlier note here said torch's bfloat16 conv3d misplaces outputs
+  for a strided, padded case; it never reproduced -- ``python scripts/library_findings.py
+  torch.bfloat16_conv3d``, AMD EPYC with and without AVX-512, 1 and 2 threads -- and is
+  withdrawn.) float16 stays claimed although torch 2.13.0 CPU died with SIGSEGV on one
   float16 conv2d (x ``(1, 1, 2, 1)``, w ``(1, 1, 1, 2)``, stride ``(1, 2)``, padding
-  ``(0, 3)``, dilation ``(1, 2)``; float32/64 and bfloat16 are fine): the nightly
-  profile reaches it and reports a crash, which is the truth about this build.
+  ``(0, 3)``, dilation ``(1, 2)``; float32/64 and bfloat16 are fine) on an AVX2 machine
+  without AVX-512; on AMD EPYC with AVX-512 it does not crash (finding
+  ``torch.float16_sigsegv``, ``python scripts/library_findings.py torch.float16_sigsegv``).
+  Where it crashes, the nightly profile reaches it and reports a crash, which is the
+  truth about that machine. float16 gradients on torch's own Slow* kernels are summed in
+  float16 (finding ``torch.float16_slow_gradients``; see ``_slow_path_backward_models``).
   ml_dtypes' bfloat16 arrays reach torch as their 16-bit patterns reinterpreted as
   ``torch.bfloat16`` (no value conversion), and come back the same way.
 * **error model** -- direct summation in the dtype of the case: on CPU torch runs
@@ -278,8 +286,10 @@ def _slow_path_backward_models(torch):
     such as the AVX2 machine of this project. There the forward is still correctly
     rounded, but the input and weight gradients are not (measured with torch 2.13.0:
     12-54% of grad_input and 25-36% of grad_weight elements differ from the
-    correctly rounded float64 result, 1-3 D; script: scripts/probe_torch_fp16.py; the
-    bias gradient too), so the three gradients are declared with accumulation in float16: γ_n at u=2^-11. Where
+    correctly rounded float64 result, 1-3 D; script: scripts/probe_torch_fp16.py, and
+    finding ``torch.float16_slow_gradients`` of scripts/library_findings.py; seen on AMD
+    EPYC with AVX2 only and with AVX-512 (AVX512_BF16, no AVX512-FP16); the bias
+    gradient too), so the three gradients are declared with accumulation in float16: γ_n at u=2^-11. Where
     torch picks oneDNN for float16, nothing is added and the float32 model stands.
     """
     try:
@@ -315,11 +325,12 @@ def _mkldnn_fp32_precision(torch) -> str:
 def torch_bf16():
     """``torch-bf16``: torch in bfloat16, 1-3 D, under the error model it follows.
 
-    Its report is not conformant on this build: torch 2.13.0's CPU bfloat16 conv3d
-    misplaces outputs for some strided geometries with padding (e.g. x ones (3,1,1,2,4),
-    padding (1,1),(0,1),(0,0) applied explicitly, w ones (1,1,1,1,3), stride (1,1,2):
-    float32 gives [[0],[0],[0]],[[3],[3],[0]] in the first planes, bfloat16 [[0],[0],[3]],
-    [[3],[2],[0]]). A real deviation, reported, not hidden.
+    An earlier note said this build's bfloat16 conv3d misplaces outputs for a strided,
+    padded case (x ones (3,1,1,2,4), padding (1,1),(0,1),(0,0), w ones (1,1,1,1,3),
+    stride (1,1,2)). It is withdrawn: the case comes out exactly right on every machine
+    tried (``python scripts/library_findings.py torch.bfloat16_conv3d``: AMD EPYC with
+    AVX-512 and an AVX2 machine without it, torch 2.13.0+cpu, 1 and 2 threads, 300
+    repetitions). Whatever this machine's torch does, the report says it.
     """
     return TorchAdapter(dtypes=("bfloat16",), name="torch-bf16")
 

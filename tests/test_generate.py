@@ -8,6 +8,7 @@ adapter, invariants, profile and seed.
 from __future__ import annotations
 
 import io
+import json
 import os
 import subprocess
 import sys
@@ -129,8 +130,8 @@ def test_planted_bug_suite_fails_where_run_fails_with_the_same_anatomy(tmp_path,
     assert {_key(r["id"]) for r in failing} == {k for k, v in outcomes.items() if v == "failed"}
     assert {"forward_reference", "forward_bias_shift"} <= {_key(r["id"]) for r in failing}
     for r in failing:
-        # pytest prefixes the exception's lines with "E   "; the anatomy must be the report's
-        shown = "\n".join(ln[1:].strip() for ln in texts[_key(r["id"])].splitlines() if ln.startswith("E "))
+        # the failure text (pytest.fail without a traceback) carries the report's anatomy
+        shown = texts[_key(r["id"])]
         for line in r["message"].splitlines():
             assert line.strip() in shown, (r["id"], line)
 
@@ -148,3 +149,86 @@ def test_generate_rejects_an_empty_selection(tmp_path):
     rc, _, err = cli("generate", "--adapter", "reference", "-o", str(tmp_path / "t.py"),
                      "--only", "no.such.invariant")
     assert rc == 2 and "matches no invariant" in err and len(err.strip().splitlines()) == 1
+
+
+# -- one execution path: the same geometries, verdicts and witnesses ----------------------
+def _import_module(path):
+    import importlib.util
+    spec = importlib.util.spec_from_file_location(f"generated_{abs(hash(str(path)))}", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def _recording(monkeypatch):
+    """Record (invariant, geometry, value kind, value seed) of every check, on either path."""
+    from convwitness.invariants import Invariant
+    seen = []
+    real = Invariant.check
+
+    def check(self, adapter, case, context=None):
+        seen.append((self.id, case.spec.to_json(), case.kind, case.seed))
+        return real(self, adapter, case, context)
+
+    monkeypatch.setattr(Invariant, "check", check)
+    return seen
+
+
+def test_run_and_generated_suite_draw_the_same_geometries_for_every_invariant(tmp_path, monkeypatch):
+    """For seed 3, every invariant that applies to the reference adapter (long
+    accumulations included) is checked on the same sequence of geometries and values by
+    `run`'s runner and by the generated module's test (source of the sequence: hypothesis
+    itself, recorded at the one call both paths make, Invariant.check)."""
+    from convwitness import load_adapter
+    from convwitness.cases.profiles import get_profile
+    from convwitness.run.runner import run_invariant, select
+    adapter = load_adapter("reference")
+    chosen = [inv for inv, why in select(adapter.capabilities) if not why]
+    assert any(inv.id.startswith("long_sum.") for inv in chosen)
+    path = generate(tmp_path, "reference", ",".join(inv.id for inv in chosen), seed=3)
+    module = _import_module(path)
+    seen = _recording(monkeypatch)
+    drawn = {}
+    for inv in chosen:
+        seen.clear()
+        res = run_invariant(adapter, inv, get_profile("quick"), seed=3)
+        from_run = list(seen)
+        seen.clear()
+        getattr(module, "test_" + _key(inv.id))()
+        from_suite = list(seen)
+        assert res.verdict == "pass", (inv.id, res.message)
+        assert from_run and from_run == from_suite, inv.id
+        drawn[inv.id] = from_run
+    # the long accumulations draw their long channel counts (256 or 512 in quick) on both
+    channels = {ConvSpec_from(s).in_channels for _, s, _, _ in drawn["long_sum.forward"]}
+    assert channels and min(channels) >= 256, channels
+
+
+def ConvSpec_from(text):
+    from convwitness.geometry.spec import ConvSpec
+    return ConvSpec.from_json(text)
+
+
+def test_failing_generated_test_gives_the_witness_run_gives(tmp_path, monkeypatch):
+    """A planted bug: the generated test fails with the whole geometry, the same verdict
+    and witness geometry as `run`, a witness file and its replay command, and no
+    traceback through convwitness's own files."""
+    import convwitness
+    adapter = f"{DEMO}:BrindlemossPort"
+    only = "forward.reference,forward.bias_shift"
+    doc = run_report(tmp_path, adapter, only)
+    path = generate(tmp_path, adapter, only)
+    res, outcomes, texts = pytest_outcomes(path)
+    assert res.returncode == 1
+    internal = os.path.dirname(os.path.abspath(convwitness.__file__))
+    for r in doc["invariants"]:
+        text = texts[_key(r["id"])]
+        assert r["verdict"] == "fail" and outcomes[_key(r["id"])] == "failed"
+        spec = ConvSpec_from(json.dumps(r["witness"]["spec"]))
+        assert f"{r['id']}: fail on {spec.describe()}" in text
+        assert f"geometry: {spec!r}" in text and "output_padding=" in text
+        assert "replay: convwitness replay " in text and internal not in text
+        for line in r["message"].splitlines():
+            assert line.strip() in text, (r["id"], line)
+        meta = json.loads((path.parent / "convwitness-witnesses" / "witnesses" / f"{r['id']}.json").read_text())
+        assert meta["spec"] == r["witness"]["spec"] and meta["verdict"] == r["verdict"]

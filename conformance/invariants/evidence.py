@@ -16,7 +16,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["Evidence", "compare", "InvariantFailure", "combine"]
+from ..errors import AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterTimeout
+
+__all__ = ["Evidence", "compare", "InvariantFailure", "combine", "verdict_of"]
 
 _WORST = 5
 
@@ -152,3 +154,17 @@ def compare(actual, expected, bound, *, what: str, criterion: str, explanation: 
 
 #: why an element is left unjudged (the ``allow`` mask of :func:`compare`)
 NOT_JUDGED = "intermediate overflow possible"
+
+
+def verdict_of(exc) -> str:
+    """The verdict of what ended an invariant: the adapter's doing, or ``internal`` (an
+    exception that convwitness did not expect is a bug of convwitness, never the adapter's)."""
+    if isinstance(exc, (InvariantFailure, AdapterOutputError)):
+        return "fail"
+    if isinstance(exc, AdapterCrashed):
+        return "crash"
+    if isinstance(exc, AdapterTimeout):
+        return "timeout"
+    if isinstance(exc, AdapterRaised):
+        return "error"
+    return "internal"

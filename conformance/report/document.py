@@ -18,7 +18,8 @@ from ..errors import ConvWitnessError
 from .verdicts import judge, word_of
 
 __all__ = ["REPORT_FORMAT", "build_report", "validate_report", "write_report", "load_report",
-           "report_path", "with_verdict", "schema", "library_versions", "ReportError"]
+           "report_path", "with_verdict", "schema", "library_versions", "environment",
+           "ReportError"]
 
 REPORT_FORMAT = "convwitness-report/1"
 _LIBS = ("numpy", "hypothesis", "jsonschema", "torch", "jax", "jaxlib", "onnx", "onnxruntime",
@@ -43,6 +44,16 @@ def library_versions() -> dict:
         except metadata.PackageNotFoundError:
             continue
     return out
+
+
+def environment(adapter=None) -> dict:
+    """Where the run happened: Python, platform, library versions, the CPU (model and
+    the instruction-set features numpy detects) and the build of the library under
+    test (report/machine.py)."""
+    from .machine import cpu_info, library_builds
+    hints = (getattr(adapter, "name", ""), getattr(adapter, "source", "")) if adapter is not None else ()
+    return {"python": sys.version.split()[0], "platform": platform.platform(),
+            "libraries": library_versions(), "cpu": cpu_info(), "builds": library_builds(*hints)}
 
 
 def _share(x: float):
@@ -101,8 +112,7 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
         "conformant": False,
         "adapter": {"name": adapter.name, "version": adapter.version, "source": adapter.source,
                     "capabilities": caps.to_dict()},
-        "environment": {"python": sys.version.split()[0], "platform": platform.platform(),
-                        "libraries": library_versions()},
+        "environment": environment(adapter),
         "profile": profile.to_dict(),
         "seed": seed,
         "shard": shard,

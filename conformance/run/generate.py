@@ -15,10 +15,17 @@ Each test is what ``convwitness run`` executes for that invariant
 (:func:`convwitness.cases.strategies.examples` with the invariant's needs for the
 adapter's capabilities), the profile's hypothesis settings and seed, and the same
 :meth:`Invariant.check` with the same per-invariant context; the share of the bound
-steers hypothesis's targeting as in the runner. So for one seed the generated suite
-and ``run`` draw the same examples, reach the same verdicts and fail with the same
-anatomy message. It needs only convwitness and the library under test, and runs under
-plain ``pytest`` or ``pytest -n auto`` (each test is self-contained).
+steers hypothesis's targeting as in the runner. The examples come from the
+invariant's own strategy (:meth:`Invariant.strategy`, so the long accumulations draw
+their long channel counts here too). So for one seed the generated suite and ``run``
+draw the same examples, reach the same verdicts and fail with the same anatomy message.
+
+A failing test then does what ``run`` does with a failure: the local pass of
+:mod:`convwitness.run.minimize`, the witness written (``convwitness-witnesses/`` beside
+the test module, or ``$CONVWITNESS_WITNESS_DIR``), and one message with the whole
+geometry, the anatomy and the replay command, without a traceback through convwitness.
+It runs under plain ``pytest`` with convwitness and the library under test;
+``pytest -n auto`` needs pytest-xdist as well (each test is self-contained).
 """
 from __future__ import annotations
 
@@ -47,6 +54,9 @@ class Suite:
             import pytest
             pytest.skip(f"verdict unavailable: {exc}", allow_module_level=True)
         self._contexts: dict = {}
+        self._checked: dict = {}        # invariant id -> geometries checked in this test
+        self.here = here
+        self._failure = None            # (invariant id, case, Evidence or adapter fault)
 
     def invariant(self, inv_id: str):
         from ..invariants import get
@@ -54,9 +64,7 @@ class Suite:
 
     def examples(self, inv_id: str):
         """The strategy ``run`` draws from for this invariant (tuples of Cases, one geometry)."""
-        from ..cases.strategies import examples
-        caps = self.adapter.capabilities
-        return examples(caps, self.profile, self.invariant(inv_id).needs_for(caps))
+        return self.invariant(inv_id).strategy(self.adapter.capabilities, self.profile)
 
     def settings(self, test):
         """Apply the profile's hypothesis settings and the seed, as ``run`` does."""
@@ -69,12 +77,52 @@ class Suite:
 
         @functools.wraps(test)
         def run_test(*args, **kwargs):
+            import pytest
+            from .runner import Enough
+            self._failure = None
+            self._checked = {}
             try:
-                return test(*args, **kwargs)
+                test(*args, **kwargs)
+            except Enough:
+                return None
             except Unsatisfiable as exc:      # `run` reports this as not-applicable
-                import pytest
                 pytest.skip(f"not-applicable: no admitted geometry could be drawn: {exc}")
+            except AssertionError:
+                if self._failure is None:
+                    raise
+                pytest.fail(self._explain_failure(), pytrace=False)
+            except _adapter_faults():
+                if self._failure is None:
+                    raise
+                pytest.fail(self._explain_failure(), pytrace=False)
+            if not self._checked:           # `run` calls this not-applicable, not a pass
+                pytest.skip("not-applicable: every example was skipped, nothing was checked")
+            return None
         return run_test
+
+    def _explain_failure(self) -> str:
+        """Minimize the last failing case as ``run`` does, write its witness, and say it
+        all in one message: verdict, whole geometry, anatomy, witness, replay command."""
+        from .minimize import minimize, outcome_verdict
+        from .witness import write_witness
+        from ..invariants.evidence import Evidence
+        inv_id, case, what = self._failure
+        m = minimize(self.adapter, self.invariant(inv_id), case, what, self.profile)
+        case, what = m.case, m.what
+        verdict = outcome_verdict(what)
+        message = what.message if isinstance(what, Evidence) else str(what)
+        folder = os.environ.get("CONVWITNESS_WITNESS_DIR") or os.path.join(
+            os.path.dirname(os.path.abspath(self.here)) if self.here else os.getcwd(),
+            "convwitness-witnesses")
+        w = write_witness(case, invariant=inv_id, verdict=verdict, message=message,
+                          report_dir=folder, seed=self.seed, adapter_source=self.spec)
+        return "\n".join([
+            f"{inv_id}: {verdict} on {case.spec.describe()}",
+            f"geometry: {case.spec!r}",
+            f"values: kind={case.kind} seed={case.seed}",
+            message.rstrip(),
+            f"witness: {os.path.join(folder, w['path'])} ({m.note})",
+            f"replay: {w['replay']}"])
 
     def context(self, inv_id: str):
         """One context per invariant, kept across its examples (as in ``run``)."""
@@ -89,12 +137,27 @@ class Suite:
         Returns the worst share of the bound, which also steers hypothesis (``target``)."""
         import hypothesis
         from ..invariants.evidence import InvariantFailure
+        from .runner import Enough
         inv, ctx = self.invariant(inv_id), self.context(inv_id)
+        checked = self._checked.get(inv_id, 0)
+        if self._failure is None and checked >= self.profile.examples:
+            raise Enough()              # as in `run`: the profile's count of checked geometries
         worst = 0.0
+        counted = False
         for case in cases:
-            ev = inv.check(self.adapter, case, ctx)
+            try:
+                ev = inv.check(self.adapter, case, ctx)
+            except _adapter_faults() as exc:
+                self._failure = (inv_id, case, exc)
+                raise
+            if ev.skipped:              # skipped examples are not checked ones (as in `run`)
+                continue
+            if not counted:
+                counted = True
+                self._checked[inv_id] = checked + 1
             worst = max(worst, min(float(ev.share), 1e12))
             if not ev.ok:
+                self._failure = (inv_id, case, ev)
                 raise InvariantFailure(ev)
         if inv.steer:
             hypothesis.target(worst, label="share of bound")
@@ -102,6 +165,11 @@ class Suite:
 
     def informational(self, inv_id: str) -> bool:
         return self.invariant(inv_id).informational(self.adapter.capabilities)
+
+
+def _adapter_faults() -> tuple:
+    from ..errors import AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterTimeout
+    return (AdapterRaised, AdapterOutputError, AdapterCrashed, AdapterTimeout)
 
 
 def _resolve_path(spec: str, here: str | None) -> str:
@@ -128,7 +196,8 @@ def _about(prof, seed) -> str:
         f"of profile {prof.name!r} ({prof.examples} geometries x {prof.values} value sets per "
         f"invariant) and seed {seed}, calling the same invariant check as `convwitness run`: for "
         "this seed both draw the same examples and reach the same verdicts, and a failure shows "
-        "the same anatomy message as the report. Run with `pytest` or `pytest -n auto`.", 88)
+        "the same anatomy message as the report. Run with `pytest` (or `pytest -n auto` with "
+        "pytest-xdist installed).", 88)
 
 
 def _doc(text: str) -> str:

@@ -19,8 +19,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis.database import DirectoryBasedExampleDatabase
 from hypothesis.errors import Unsatisfiable
 
+from ..boundary.calls import clock_of
 from ..errors import AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterTimeout
-from ..invariants.evidence import Evidence, InvariantFailure
+from ..invariants.evidence import Evidence, InvariantFailure, verdict_of as _verdict_of
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
 from ..cases.features import feature_of
@@ -226,20 +227,6 @@ def _failure_exception(what):
     return InvariantFailure(what) if isinstance(what, Evidence) else what
 
 
-def _verdict_of(exc) -> str:
-    """The verdict of what ended an invariant: the adapter's doing, or ``internal`` (an
-    exception that convwitness did not expect is a bug of convwitness, never the adapter's)."""
-    if isinstance(exc, (InvariantFailure, AdapterOutputError)):
-        return "fail"
-    if isinstance(exc, AdapterCrashed):
-        return "crash"
-    if isinstance(exc, AdapterTimeout):
-        return "timeout"
-    if isinstance(exc, AdapterRaised):
-        return "error"
-    return "internal"
-
-
 def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
                   report_dir: str | None = None, refusal: str | None = None,
                   shrink: bool = True, replay_hint: str = "", watch=None, exclude=None,
@@ -313,8 +300,9 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     if tally.stopped and tally.failure is not None:
         res.reason = f"shrinking stopped at the time budget of {profile.budget_s:g} s"
     if tally.hung:
-        res.reason = ("not shrunk: the search stopped at the first call that hung (each try "
-                      "of a hang costs a full call timeout)")
+        res.reason = ("not shrunk by hypothesis: the search stopped at the first call that hung "
+                      "(each try of a hang costs a full call timeout); smaller neighbours were "
+                      "probed under the tight probe limit instead")
     drain = getattr(adapter, "drain_output", None)
     if drain is not None:
         text = drain()
@@ -332,6 +320,20 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     if res.verdict in DECIDING_FAILURES + ("internal",) and tally.failure is not None:
         case, what = tally.failure
         if isinstance(what, Evidence):
+            res.worst_share = float(what.share)
+        minimal = None
+        if shrink:                      # the local pass after hypothesis's shrinking
+            from .minimize import minimize
+            clock = clock_of(adapter)
+            if isinstance(what, AdapterTimeout) and clock is not None:
+                with clock.probing():   # a hang is probed under the tight limit, not rerun in full
+                    minimal = minimize(adapter, inv, case, what, profile, exclude=exclude)
+            else:
+                minimal = minimize(adapter, inv, case, what, profile, exclude=exclude)
+            if minimal.steps:           # the case moved: its message is the one to show
+                case, what = minimal.case, minimal.what
+                res.message = what.message if isinstance(what, Evidence) else str(what)
+        if isinstance(what, Evidence):
             # the share of the minimal case, the one the message and the witness show
             res.worst_share = float(what.share)
             res.worst_bound = what.message.splitlines()[0] if what.message else res.worst_bound
@@ -341,6 +343,9 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         else:
             res.witness = {"spec": case.spec.to_dict(), "geometry": case.spec.describe(),
                            "kind": case.kind}
+        if minimal is not None:
+            res.witness.update(minimal=minimal.minimal, minimization=minimal.note)
+    res.duration_s = time.perf_counter() - t0
     return res
 
 

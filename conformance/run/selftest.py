@@ -8,6 +8,10 @@ row per adapter, one column per invariant that flagged anything, ``X`` where tha
 invariant caught the bug. It exits 0 only when every bug is caught by at least one
 invariant that decides conformance and no control is flagged by any; 1 otherwise.
 
+For each caught bug it then shrinks the failure of the first invariant that caught it
+(hypothesis, then the local pass of run/minimize.py) and prints the share of these
+zoo witnesses that are 1-minimal (the goal is all of them), naming any that are not.
+
 A bug counts as caught when an invariant that is not merely informational ends in
 ``fail``, ``error``, ``crash`` or ``timeout`` on it. Informational results (special
 values on an adapter that does not claim IEEE semantics) never count, either way.
@@ -37,6 +41,7 @@ class ZooOutcome:
     messages: dict = field(default_factory=dict)        # id -> first line of the anatomy
     ran: int = 0                                        # invariants that ran (not n/a)
     seconds: float = 0.0
+    witness: dict | None = None                         # the shrunk witness of caught_by[0]
 
     @property
     def ok(self) -> bool:
@@ -61,8 +66,10 @@ def _entries(only: str | None):
 
 
 def run_zoo(profile="quick", seed: int | None = 0, only: str | None = None,
-            on_done=None) -> list[ZooOutcome]:
-    """Run the suite on every zoo entry and control; ``on_done(outcome)`` after each."""
+            on_done=None, witnesses: bool = True) -> list[ZooOutcome]:
+    """Run the suite on every zoo entry and control; ``on_done(outcome)`` after each.
+    With ``witnesses``, a caught bug's first catching invariant is run again with
+    shrinking and the local minimizing pass, and its witness kept."""
     profile = get_profile(profile)
     outcomes = []
     for name, cls, control, bug_class in _entries(only):
@@ -77,6 +84,12 @@ def run_zoo(profile="quick", seed: int | None = 0, only: str | None = None,
             if r.verdict in FLAGGED and not r.informational:
                 out.caught_by.append(r.id)
                 out.messages[r.id] = (r.message or r.verdict).splitlines()[0][:160]
+        if witnesses and out.caught_by and not control:
+            from ..invariants import get
+            from .runner import run_invariant
+            shrunk = run_invariant(adapter, get(out.caught_by[0]), profile, seed=seed, shrink=True)
+            out.witness = shrunk.witness
+            out.seconds = time.perf_counter() - t0
         outcomes.append(out)
         if on_done is not None:
             on_done(out)
@@ -118,6 +131,15 @@ def selftest(profile="quick", seed: int | None = 0, only: str | None = None,
           f"{sum(1 for o in outcomes if o.control) - len(flagged)} of "
           f"{sum(1 for o in outcomes if o.control)} correct adapters clean "
           f"({time.perf_counter() - t0:.0f} s)", file=stdout)
+    shrunk = [o for o in bugs if o.witness is not None]
+    if shrunk:
+        minimal = [o for o in shrunk if o.witness.get("minimal")]
+        print(f"{len(minimal)} of {len(shrunk)} zoo witnesses 1-minimal "
+              f"({100.0 * len(minimal) / len(shrunk):.0f}%)", file=stdout)
+        for o in shrunk:
+            if not o.witness.get("minimal"):
+                print(f"NOT 1-MINIMAL: {o.name} {o.caught_by[0]}: {o.witness['geometry']} -- "
+                      f"{o.witness.get('minimization', 'no local pass')}", file=stdout)
     for name in missed:
         print(f"MISSED: {name} was certified although it carries a planted bug", file=stdout)
     for o in flagged:

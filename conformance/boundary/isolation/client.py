@@ -278,6 +278,16 @@ class ProcessAdapter:
         while True:
             left = deadline - time.monotonic()
             if left <= 0:
+                if w.conn.poll(0):          # the answer came just at the deadline: take it
+                    break
+                if self.memory_limit and _rss(w.pid) > self.memory_limit:
+                    # out of time while over its memory limit: the verdict is the memory,
+                    # whichever of the two a loaded machine let come first
+                    self._drop()
+                    raise AdapterCrashed(f"adapter {self.name} {op}: the worker passed the memory "
+                                         f"limit of {self.memory_limit / 2**30:.2f} GiB "
+                                         "(--memory-limit) and was stopped at the call timeout",
+                                         self.drain_output())
                 self._drop()
                 raise AdapterTimeout(self.clock.hung(sig, f"adapter {self.name} {op}", limit),
                                      self.drain_output())
