@@ -15,10 +15,14 @@ from ..errors import SpecError
 from .formats import STORAGE_FORMATS
 from .spec import LAYOUTS, ConvSpec
 
-__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES"]
+__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES", "GRADIENTS", "MODEL_KEYS"]
 
 PADDING_KINDS = ("symmetric", "asymmetric", "negative")
 PASS_NAMES = ("forward", "backward", "transposed")
+#: the outputs of the backward pass; an error model keyed "dtype/backward" covers all three
+GRADIENTS = ("grad_input", "grad_weight", "grad_bias")
+#: what may follow "dtype/" in an error_models key
+MODEL_KEYS = PASS_NAMES + GRADIENTS
 
 
 def _frozen(name, value, allowed=None, kind=str):
@@ -40,9 +44,10 @@ def _frozen(name, value, allowed=None, kind=str):
 class Capabilities:
     """What an adapter claims. ``admits(spec)`` says whether a geometry is claimed.
 
-    ``error_models`` maps a dtype, or ``"dtype/pass"`` (pass one of forward, transposed,
-    grad_input, grad_weight, grad_bias), to its :class:`ErrorModel`; the most specific
-    entry wins, and ``error_model`` covers the rest. ``max_elements`` caps the number of elements of any one array
+    ``error_models`` maps a dtype, or ``"dtype/pass"`` (a pass: forward, backward,
+    transposed; or one output of the backward pass: grad_input, grad_weight, grad_bias),
+    to its :class:`ErrorModel`; the most specific entry wins (``dtype/grad_input``, then
+    ``dtype/backward``, then ``dtype``), and ``error_model`` covers the rest. ``max_elements`` caps the number of elements of any one array
     (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
     """
 
@@ -73,7 +78,7 @@ class Capabilities:
         em = self.error_models
         if isinstance(em, Mapping):
             em = tuple(sorted(em.items()))
-        passes = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
+        passes = MODEL_KEYS
         for item in em:
             if not (isinstance(item, tuple) and len(item) == 2 and isinstance(item[1], ErrorModel)):
                 raise SpecError(f"Capabilities: error_models entry {item!r} must be "
@@ -93,6 +98,8 @@ class Capabilities:
         table = dict(self.error_models)
         if pass_ is not None and f"{dtype}/{pass_}" in table:
             return table[f"{dtype}/{pass_}"]
+        if pass_ in GRADIENTS and f"{dtype}/backward" in table:
+            return table[f"{dtype}/backward"]
         return table.get(dtype, self.error_model)
 
     def refusal(self, spec: ConvSpec) -> str | None:
