@@ -33,7 +33,7 @@ def test_readme_example_runs(tmp_path, monkeypatch, capsys):
     assert "forward.reference" in report.scope["deciding"]
     # the same folder as `convwitness run`
     for name in ("report.json", "report.html", "summary.md", "junit.xml"):
-        assert (tmp_path / "reports" / "api-example" / name).is_file(), name
+        assert (tmp_path / "conv-report" / name).is_file(), name
     assert capsys.readouterr().out.startswith("CONFORMANT")
 
 
