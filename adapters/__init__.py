@@ -14,6 +14,8 @@ BUILTINS: dict[str, str] = {
     "jax": "convwitness.adapters.jax_lax:JaxAdapter",
     "jax-bf16": "convwitness.adapters.jax_lax:jax_bf16",
     "onnxruntime": "convwitness.adapters.onnxruntime_node:OnnxRuntimeAdapter",
+    "onnx-reference": "convwitness.adapters.onnx_reference:OnnxReferenceAdapter",
+    "tensorflow": "convwitness.adapters.tensorflow_nn:TensorflowAdapter",
     "scipy": "convwitness.adapters.scipy_signal:ScipyAdapter",
     "scipy-fft": "convwitness.adapters.scipy_fft:ScipyFftAdapter",
     "oxtervane-npu": "convwitness.adapters.oxtervane:OxtervaneNPU",

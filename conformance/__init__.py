@@ -26,6 +26,9 @@ _LAZY = {
     "cases": ("convwitness.cases.strategies", "cases"),
     "examples": ("convwitness.cases.strategies", "examples"),
     "load_case": ("convwitness.cases.case", "load_case"),
+    "certify": ("convwitness.api", "certify"),
+    "Report": ("convwitness.api", "Report"),
+    "NotConformant": ("convwitness.api", "NotConformant"),
 }
 
 
@@ -40,6 +43,7 @@ def __getattr__(name: str):
 
 
 __all__ = [
+    "certify", "Report", "NotConformant",
     "Suite", "Needs", "specs", "cases", "examples", "load_case",
     "Adapter", "AdapterLoadError", "AdapterOutputError", "AdapterUnavailable", "Bound",
     "Capabilities", "CaseFileError", "ConvSpec", "ConvWitnessError", "ErrorModel", "FormatError",

@@ -4,7 +4,7 @@
     python scripts/regen_reports.py [--profile quick] [--seed 0] [--no-screenshot]
 
 * ``reports/<adapter>/`` for each built-in adapter whose library is installed
-  (reference, torch, jax, onnxruntime, scipy) and for the Oxtervane OXT-16 demo port
+  (reference, torch, jax, onnxruntime, onnx-reference, tensorflow, scipy) and for the Oxtervane OXT-16 demo port
   (``oxtervane-npu``, the README's default) and its planted tile-remainder sibling
   (``oxtervane-npu-tailbug``): report.json, report.html, summary.md,
   junit.xml and any witnesses, written by ``convwitness run``. An adapter whose library
@@ -31,7 +31,8 @@ import tempfile
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 REPORTS = os.path.join(ROOT, "reports")
-BUILTINS = ("reference", "torch", "jax", "onnxruntime", "scipy", "oxtervane-npu",
+BUILTINS = ("reference", "torch", "jax", "onnxruntime", "onnx-reference", "tensorflow", "scipy",
+            "oxtervane-npu",
             "convwitness.adapters.oxtervane:OxtervaneNPUTailBug")
 DEMO = "reports/_demo/brindlemoss_port.py"
 DEMOS = (("brindlemoss-0.3.0", f"{DEMO}:BrindlemossPort030"), ("brindlemoss-0.3.1", f"{DEMO}:BrindlemossPort"))

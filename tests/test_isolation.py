@@ -174,3 +174,22 @@ def test_views_invariant_under_process_isolation(tmp_path, adapter, code):
     assert proc.returncode == code, proc.stdout + proc.stderr
     doc = load_report(str(tmp_path / "r" / "report.json"))
     assert doc["invariants"][0]["verdict"] == ("fail" if code else "pass")
+
+
+def test_closing_an_arena_twice_leaves_later_files_alone(tmp_path):
+    # POSIX close(2): a descriptor number is reused by the next open(); closing it a second
+    # time closes that other file. A ProcessAdapter closed by hand and then collected
+    # (__del__) closed its arenas twice, which closed a run's journal (EBADF on fsync) when
+    # two certifications ran in one process (the Python API).
+    import os
+    from convwitness.boundary.isolation.arena import Arena
+    arena = Arena.create(prefix="twice")
+    try:
+        arena.close()
+        with open(tmp_path / "later.txt", "w") as fh:       # likely takes the arena's number
+            arena.close()
+            fh.write("still open")
+            fh.flush()
+            os.fsync(fh.fileno())
+    finally:
+        Arena.remove(arena.name)

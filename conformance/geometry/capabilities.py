@@ -16,10 +16,14 @@ from .claims import check_constraints, check_per_pass, constraint_refusal, merge
 from .formats import STORAGE_FORMATS
 from .spec import LAYOUTS, ConvSpec
 
-__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES"]
+__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES", "GRADIENTS", "MODEL_KEYS"]
 
 PADDING_KINDS = ("symmetric", "asymmetric", "negative")
 PASS_NAMES = ("forward", "backward", "transposed")
+#: the outputs of the backward pass; an error model keyed "dtype/backward" covers all three
+GRADIENTS = ("grad_input", "grad_weight", "grad_bias")
+#: what may follow "dtype/" in an error_models key
+MODEL_KEYS = PASS_NAMES + GRADIENTS
 
 
 def _frozen(name, value, allowed=None, kind=str):
@@ -41,12 +45,16 @@ def _frozen(name, value, allowed=None, kind=str):
 class Capabilities:
     """What an adapter claims. ``admits(spec)`` says whether a geometry is claimed.
 
-    ``error_models`` maps a dtype, or ``"dtype/pass"`` (pass one of forward, transposed,
-    grad_input, grad_weight, grad_bias), to its :class:`ErrorModel`; the most specific
-    entry wins, and ``error_model`` covers the rest. ``passes=None`` (the default) means
-    every pass the object implements (its ``forward``, ``backward`` and ``transposed``
-    methods); a set excludes the implemented passes it leaves out, and the loader records
-    those in ``unclaimed_passes`` (implemented, not claimed: untested). ``max_elements`` caps the number of elements of any one array
+    ``error_models`` maps a dtype, or ``"dtype/pass"`` (a pass: forward, backward,
+    transposed; or one output of the backward pass: grad_input, grad_weight, grad_bias),
+    optionally followed by ``/1d``, ``/2d`` or ``/3d``, to its :class:`ErrorModel`; the most
+    specific entry wins (``dtype/grad_input/Nd``, ``dtype/grad_input``, ``dtype/backward``,
+    ``dtype/Nd``, then ``dtype``), and ``error_model`` covers the rest. ``passes=None`` (the
+    default) means every pass the object implements (its ``forward``, ``backward`` and
+    ``transposed`` methods); a set excludes the implemented passes it leaves out, and the
+    loader records those in ``unclaimed_passes`` (implemented, not claimed: untested).
+    ``per_pass`` and ``constraints`` narrow the claims by pass and by named constraint
+    (geometry/claims.py). ``max_elements`` caps the number of elements of any one array
     (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
     """
 
@@ -98,10 +106,13 @@ class Capabilities:
 
     def error_model_for(self, dtype: str, pass_: str | None = None,
                         ndim: int | None = None) -> ErrorModel:
-        """The most specific entry: dtype/pass/Nd, dtype/pass, dtype/Nd, dtype, default."""
+        """The most specific entry: dtype/pass/Nd, dtype/pass, for a gradient
+        dtype/backward/Nd and dtype/backward, then dtype/Nd, dtype, the default."""
         table = dict(self.error_models)
         nd = f"{ndim}d" if ndim else None
+        grad = pass_ in GRADIENTS
         for key in (pass_ and nd and f"{dtype}/{pass_}/{nd}", pass_ and f"{dtype}/{pass_}",
+                    grad and nd and f"{dtype}/backward/{nd}", grad and f"{dtype}/backward",
                     nd and f"{dtype}/{nd}", dtype):
             if key and key in table:
                 return table[key]
@@ -219,7 +230,7 @@ class Capabilities:
                 + (" (inferred)" if self.passes is None else ""))
 
 
-_MODEL_PASSES = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
+_MODEL_PASSES = MODEL_KEYS
 
 
 def _model_key(key: str) -> None:

@@ -65,8 +65,13 @@ class Arena:
             self.map.close()
         except (BufferError, ValueError):
             pass
+        # once only: a second os.close() on the same number would close whatever file
+        # the process opened with it since (a ProcessAdapter closed, then collected)
+        fd, self._fd = self._fd, -1
+        if fd < 0:
+            return
         try:
-            os.close(self._fd)
+            os.close(fd)
         except OSError:
             pass
 
