@@ -59,11 +59,26 @@ class Suite:
         return examples(caps, self.profile, self.invariant(inv_id).needs_for(caps))
 
     def settings(self, test):
-        """Apply the profile's hypothesis settings and the seed, as ``run`` does."""
+        """Apply the profile's hypothesis settings and the seed, as ``run`` does.
+
+        ``@suite.settings("forward.reference")`` also runs that invariant's covering
+        schedule first, as ``run`` does (suites generated before the schedule existed use
+        the bare ``@suite.settings`` and draw freely only)."""
+        if isinstance(test, str):
+            return functools.partial(self._settings, inv_id=test)
+        return self._settings(test)
+
+    def _settings(self, test, inv_id: str | None = None):
         import hypothesis
         from hypothesis.errors import Unsatisfiable
-        from .runner import hypothesis_settings
-        test = hypothesis_settings(self.profile, None)(test)
+        from .runner import covering_examples, free_examples, hypothesis_settings, with_examples
+        explicit = []
+        if inv_id is not None:
+            explicit = covering_examples(self.adapter.capabilities, self.invariant(inv_id),
+                                         self.profile, self.seed)
+            test = with_examples(test, explicit)
+        test = hypothesis_settings(self.profile, None,
+                                   max_examples=free_examples(self.profile, explicit))(test)
         if self.seed is not None:
             test = hypothesis.seed(self.seed)(test)
 
@@ -180,7 +195,7 @@ Regenerate (do not edit by hand):
             lines.append(("# " + pline).rstrip())
         if inv.informational(adapter.capabilities):
             lines.append(f"@pytest.mark.xfail(reason={('information only: the adapter does not claim ' + inv.informational_unless)!r}, strict=False)")
-        lines += ["@suite.settings", f"@given(suite.examples({inv.id!r}))",
+        lines += [f"@suite.settings({inv.id!r})", f"@given(suite.examples({inv.id!r}))",
                   f"def {_name(inv.id)}(cases):",
                   f'    """{_doc(inv.statement)}"""',
                   f"    suite.check({inv.id!r}, cases)"]

@@ -24,7 +24,7 @@ from ..errors import (AdapterCrashed, AdapterOutputError, AdapterRaised, Adapter
 from ..invariants.evidence import Evidence, InvariantFailure
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
-from ..cases.features import feature_of
+from ..cases.features import feature_of, pair_tags, reach_of
 
 __all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted"]
 
@@ -51,6 +51,8 @@ class InvariantResult:
     traceback: str = ""
     output: str = ""
     coverage: dict = field(default_factory=dict)
+    #: targets the invariant could reach, pair spaces, and what it reached (tag -> count)
+    reach: dict = field(default_factory=dict)
 
     @property
     def counts(self) -> bool:
@@ -74,12 +76,13 @@ def select(caps, only=None) -> list[tuple[Invariant, str | None]]:
     return out
 
 
-def hypothesis_settings(profile: Profile, database_dir: str | None, *, shrink: bool = True):
+def hypothesis_settings(profile: Profile, database_dir: str | None, *, shrink: bool = True,
+                        max_examples: int | None = None):
     phases = list(hypothesis.Phase)
     if not shrink:
         phases = [p for p in phases if p is not hypothesis.Phase.shrink]
     return settings(
-        max_examples=profile.examples,
+        max_examples=profile.examples if max_examples is None else max_examples,
         deadline=profile.deadline_ms,
         database=DirectoryBasedExampleDatabase(database_dir) if database_dir else None,
         suppress_health_check=list(HealthCheck),
@@ -110,6 +113,8 @@ class _Tally:
         self.stopped = False
         self.vacuous = 0
         self.vacuous_why = ""
+        self.reach: Counter = Counter()
+        self.plan: dict = {}
 
     def record(self, case, ev: Evidence):
         share = float(ev.share)
@@ -138,9 +143,11 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         spec = cases[0].spec
         for k, v in feature_of(spec).items():
             tally.coverage[f"{k}={v}"] += 1
+        tally.reach.update(reach_of(spec) | pair_tags(spec))
         worst = 0.0
         for case in cases:
             tally.coverage[f"kind={case.kind}"] += 1
+            tally.reach[f"kind:{case.kind}"] += 1
             tally.examples += 1
             try:
                 ev = inv.check(adapter, case, context)
@@ -162,10 +169,46 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
             hypothesis.target(worst, label="share of bound")
 
     test = given(strategy)(body)
-    test = hypothesis_settings(profile, database_dir, shrink=shrink)(test)
+    explicit = covering_examples(adapter.capabilities, inv, profile, seed, tally)
+    test = with_examples(test, explicit)
+    test = hypothesis_settings(profile, database_dir, shrink=shrink,
+                               max_examples=free_examples(profile, explicit))(test)
     if seed is not None:
         test = hypothesis.seed(seed)(test)
     return test, tally
+
+
+def free_examples(profile: Profile, explicit: list) -> int:
+    """Hypothesis's free search after the schedule: the schedule's geometries replace part
+    of it, never more than half."""
+    return max(profile.examples - len(explicit), profile.examples // 2)
+
+
+def with_examples(test, explicit: list):
+    """``test`` (a ``@given`` test) with the schedule as explicit examples, in order."""
+    for cases in reversed(explicit):
+        test = hypothesis.example(cases)(test)
+    return test
+
+
+def covering_examples(caps, inv: Invariant, profile: Profile, seed, tally: _Tally | None = None) -> list:
+    """The covering schedule of ``inv`` as tuples of Cases (run before the free search);
+    invariants with strategies of their own (``cases=``) have none."""
+    if inv.cases is not None:
+        return []
+    import zlib
+    from ..cases.schedule import pair_space, schedule, targets, value_kinds
+    from ..cases.strategies import make_case
+    needs = inv.needs_for(caps)
+    specs = schedule(caps, profile, needs, seed, inv.id)
+    if tally is not None:
+        tally.plan = {"targets": targets(caps, needs), "pairs": pair_space(caps, needs),
+                      "scheduled": len(specs)}
+    out = []
+    for i, (spec, kinds) in enumerate(zip(specs, value_kinds(needs, len(specs), profile.values))):
+        out.append(tuple(make_case(spec, k, zlib.crc32(f"{inv.id}/{seed}/{i}/{j}".encode()))
+                         for j, k in enumerate(kinds)))
+    return out
 
 
 def _failure_exception(what):
@@ -251,6 +294,8 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     res.examples, res.geometries = tally.examples, tally.geometries
     res.shares = tally.shares
     res.coverage = dict(tally.coverage)
+    if tally.plan:
+        res.reach = dict(tally.plan, reached=dict(sorted(tally.reach.items())))
     if tally.worst is not None:
         res.worst_share = float(tally.worst.share)
         res.worst_bound = tally.worst.message.splitlines()[0] if tally.worst.message else ""
