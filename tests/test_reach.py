@@ -187,3 +187,31 @@ def test_seed_matrix_of_coincidence_bugs_is_full():
     text = out.getvalue()
     assert rc == 0, text
     assert "4 of 4 (bug, seed) cells caught" in text
+
+
+# -- the report's reach section -------------------------------------------------------------
+def test_report_reach_validates_against_its_json_schema_and_shows_in_summary_md():
+    # JSON Schema draft 2020-12 (json-schema.org), checked by the jsonschema library
+    from convwitness.report.document import validate_report
+    from convwitness.report.markdown import render
+    from convwitness.run.certify import certify
+    doc, _ = certify(load_adapter("reference"), profile="quick", seed=0,
+                     only="forward.contract,grad_weight.reference")
+    validate_report(doc)
+    assert doc["reach"]["targets"] == doc["reach"]["reached"] > 0 and doc["reach"]["holes"] == {}
+    for r in doc["invariants"]:
+        assert set(r["reach"]["targets"]) <= set(r["reach"]["reached"])
+        for pct in doc["reach"]["pairs"][r["id"]].values():
+            assert 0 < pct <= 100
+    assert "no holes." in render(doc)
+
+
+def test_report_names_a_hole():
+    from convwitness.report.reach import invariant_reach, markdown_lines
+    r = invariant_reach({"targets": ["feature:zero_batch", "dtype:float32"], "scheduled": 1,
+                         "pairs": {"stride×dilation": ["unit×none", "strided×none"]},
+                         "reached": {"dtype:float32": 3, "pair:stride×dilation=unit×none": 3}})
+    assert r["holes"] == ["feature:zero_batch"] and r["pairs"] == {"stride×dilation": 50.0}
+    text = "\n".join(markdown_lines({"reach": {"targets": 2, "reached": 1, "pairs": {},
+                                               "holes": {"forward.contract": r["holes"]}}}))
+    assert "`forward.contract`: feature:zero_batch" in text

@@ -66,6 +66,7 @@ def result_to_dict(r) -> dict:
         "examples_per_s": round(float(r.examples_per_s), 3),
         "message": r.message, "reason": r.reason, "witness": r.witness,
         "traceback": r.traceback, "output": r.output, "coverage": dict(r.coverage),
+        **({"reach": r.reach} if getattr(r, "reach", None) else {}),
     }
 
 
@@ -103,7 +104,14 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
                     ("pass", "fail", "error", "crash", "timeout", "not-applicable", "unavailable")},
         "invariants": invs,
         "coverage": cov,
+        **_reach(invs),
     }
+
+
+def _reach(invs: list) -> dict:
+    from .reach import summarize
+    reach = summarize(invs)
+    return {"reach": reach} if reach else {}
 
 
 def _tool_version() -> str:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import re
 
 from .outputs import FAILING, headline, label, share_text
+from .reach import markdown_lines as reach_lines
 
 __all__ = ["render", "md_text", "md_code"]
 
@@ -72,6 +73,7 @@ def render(doc: dict, report_dir: str | None = None) -> str:
     else:
         lines += ["Every applicable invariant passed." if doc["conformant"] else
                   "No invariant failed, but the run does not certify the adapter (see the report).", ""]
+    lines += reach_lines(doc)
     lines += ["<details><summary>All invariants</summary>", "",
               "| invariant | verdict | examples | worst share | examples/s |", "|---|---|---:|---:|---:|"]
     for r in doc["invariants"]:
