@@ -28,7 +28,7 @@ from .values import KINDS, NUMERIC_KINDS
 
 __all__ = ["Needs", "FEATURES", "GROUPINGS", "COINCIDENCES", "THRESHOLD_COUNTS", "Reject",
            "RngPicker", "features_for", "coincidences_for", "groupings_for", "dtypes_for",
-           "build_spec"]
+           "build_spec", "satisfies"]
 
 FEATURES = ("plain", "remainder", "stride_over_kernel", "anisotropic", "pad_before", "pad_after",
             "window_in_padding", "kernel_fills_input", "unit_length", "pointwise",
@@ -360,3 +360,28 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
                                     math.prod(spec.y_shape)) > profile.max_elements:
         pick.reject()
     return spec
+
+
+def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
+    """Whether ``spec`` (drawn for another invariant) meets these needs and claims: the
+    test that lets invariants share geometries (fewer distinct call signatures)."""
+    if needs.features is not None or spec.transposed != needs.transposed:
+        return False
+    if needs.bias is not None and spec.bias != needs.bias:
+        return False
+    props = ((needs.stride, any(s > 1 for s in spec.stride)),
+             (needs.dilation, any(d > 1 for d in spec.dilation)),
+             (needs.padding, any(lo or hi for lo, hi in spec.padding)),
+             (needs.grouped, spec.groups > 1),
+             (needs.negative_padding, any(min(p) < 0 for p in spec.padding)),
+             (needs.zero_batch, spec.batch == 0))
+    if any(want is not None and want != has for want, has in props):
+        return False
+    if spec.batch < needs.batch_min or (spec.batch == 0 and not caps.zero_batch):
+        return False
+    for allowed, value in ((needs.layouts, spec.layout), (needs.dtypes, spec.dtype),
+                           (needs.ndims, spec.ndim)):
+        if allowed is not None and value not in allowed:
+            return False
+    return caps.admits(spec) and spec.dtype in dtypes_for(caps, needs) and max(
+        math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements

@@ -21,8 +21,8 @@ from __future__ import annotations
 import zlib
 
 from ..geometry.capabilities import Capabilities
-from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for, dtypes_for,
-                   features_for, groupings_for)
+from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
+                   dtypes_for, features_for, groupings_for, satisfies)
 from .features import reach_of
 from .profiles import Profile
 
@@ -112,11 +112,26 @@ def _try(caps, profile, needs, forced: dict, seed: int, wanted: set):
 
 
 def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | None = 0,
-             salt: str = "") -> list:
-    """The explicit geometries (specs) that reach every structural target, in order."""
+             salt: str = "", pool: list | None = None) -> list:
+    """The explicit geometries (specs) that reach every structural target, in order.
+
+    With ``pool`` (a list of ``(spec, tags)`` shared by the invariants of a run), the
+    geometries of earlier invariants that meet these needs are taken first, greedily by
+    how many unreached targets each adds; fresh geometries are added to the pool."""
     base = zlib.crc32(f"{salt}/{seed or 0}".encode())
     remaining = [t for t in targets(caps, needs) if not t.startswith("kind:")]
     specs = []
+    if pool:
+        usable = [(sp, tags) for sp, tags in pool if satisfies(sp, caps, profile, needs)]
+        while remaining and len(specs) < MAX_ENTRIES and usable:
+            want = set(remaining)
+            gain, best = max(((len(tags & want), -i) for i, (_, tags) in enumerate(usable)),
+                             default=(0, 0))
+            if gain == 0:
+                break
+            sp, tags = usable.pop(-best)
+            specs.append(sp)
+            remaining = [t for t in remaining if t not in tags]
     step = 0
     while remaining and len(specs) < MAX_ENTRIES:
         step += 1
@@ -139,6 +154,8 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
                 remaining.pop(0)        # unreachable here: the report names the hole
                 continue
         specs.append(spec)
+        if pool is not None:
+            pool.append((spec, frozenset(reach_of(spec))))
         remaining = [t for t in remaining if t not in new]
     return specs
 

@@ -105,6 +105,7 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
         "invariants": invs,
         "coverage": cov,
         **_reach(invs),
+        **({"signatures": len(adapter.signatures)} if getattr(adapter, "signatures", None) else {}),
     }
 
 

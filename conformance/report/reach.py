@@ -49,7 +49,9 @@ def markdown_lines(doc: dict) -> list[str]:
     lines = [f"**Reach:** {reach['reached']} of {reach['targets']} admitted targets reached "
              f"(features, coincidences, channel structures, dtypes, layouts, ndims, claimed "
              f"corners, value kinds; summed over invariants)"
-             + ("; no holes." if not holes else f"; holes in {len(holes)} invariant(s):"), ""]
+             + ("; no holes." if not holes else f"; holes in {len(holes)} invariant(s):")]
+    if holes:
+        lines.append("")
     for inv, missing in sorted(holes.items()):
         lines.append(f"- `{inv}`: {', '.join(missing)}")
     pairs = reach.get("pairs") or {}
@@ -58,6 +60,4 @@ def markdown_lines(doc: dict) -> list[str]:
         low = {n: min(p[n] for p in pairs.values() if n in p) for n in names}
         lines += (["", "Feature pairs, lowest coverage over invariants: "
                    + ", ".join(f"{n} {low[n]:g}%" for n in names)] if names else [])
-    if holes:
-        lines.append("")
     return lines + [""]

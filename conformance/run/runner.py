@@ -178,6 +178,30 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
     return test, tally
 
 
+_SCHEDULES: dict = {}
+
+
+def run_schedules(caps, profile: Profile, seed) -> dict:
+    """The covering schedules of every invariant the capabilities admit, built in catalogue
+    order over one run-wide pool of geometries: an invariant first reuses the geometries of
+    the invariants before it (fewer distinct call signatures for ports that compile per
+    shape). A function of (capabilities, profile, seed) alone, so ``run``, ``--only``,
+    shards and generated suites all get the same schedule for an invariant."""
+    from ..cases.schedule import schedule
+    key = (caps, profile, seed)
+    try:
+        if key in _SCHEDULES:
+            return _SCHEDULES[key]
+    except TypeError:               # unhashable capabilities: build, do not cache
+        key = None
+    pool: list = []
+    out = {inv.id: schedule(caps, profile, inv.needs_for(caps), seed, inv.id, pool)
+           for inv in catalogue() if inv.cases is None and not inv.refusal(caps)}
+    if key is not None:
+        _SCHEDULES[key] = out
+    return out
+
+
 def free_examples(profile: Profile, explicit: list) -> int:
     """Hypothesis's free search after the schedule: the schedule's geometries replace part
     of it, never more than half."""
@@ -200,7 +224,9 @@ def covering_examples(caps, inv: Invariant, profile: Profile, seed, tally: _Tall
     from ..cases.schedule import pair_space, schedule, targets, value_kinds
     from ..cases.strategies import make_case
     needs = inv.needs_for(caps)
-    specs = schedule(caps, profile, needs, seed, inv.id)
+    specs = run_schedules(caps, profile, seed).get(inv.id)
+    if specs is None:
+        specs = schedule(caps, profile, needs, seed, inv.id)
     if tally is not None:
         tally.plan = {"targets": targets(caps, needs), "pairs": pair_space(caps, needs),
                       "scheduled": len(specs)}
