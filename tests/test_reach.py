@@ -215,3 +215,18 @@ def test_report_names_a_hole():
     text = "\n".join(markdown_lines({"reach": {"targets": 2, "reached": 1, "pairs": {},
                                                "holes": {"forward.contract": r["holes"]}}}))
     assert "`forward.contract`: feature:zero_batch" in text
+
+
+def test_run_wide_pool_keeps_every_target_and_shares_geometries():
+    from convwitness.run.runner import run_schedules
+    caps = load_adapter("reference").capabilities
+    sched = run_schedules(caps, QUICK, 0)
+    distinct = {s for specs in sched.values() for s in specs}
+    assert len(distinct) < sum(map(len, sched.values()))          # geometries are shared
+    for inv_id, specs in sched.items():
+        inv = get(inv_id)
+        needs = inv.needs_for(caps)
+        wanted = {t for t in targets(caps, needs) if not t.startswith("kind:")}
+        assert wanted <= set().union(*(reach_of(s) for s in specs)), inv_id
+        # a shared geometry still meets this invariant's needs
+        assert all(s.transposed == needs.transposed and s.batch >= needs.batch_min for s in specs)
