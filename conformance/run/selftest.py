@@ -135,8 +135,9 @@ def _seeds_selftest(profile, seeds, only, stdout, stderr) -> int:
     t0 = time.perf_counter()
     by_seed = {}
     for sd in seeds:
-        print(f"selftest: seed {sd} ...", file=stderr)
-        by_seed[sd] = run_zoo(profile, sd, only)
+        by_seed[sd] = run_zoo(profile, sd, only, on_done=lambda o, sd=sd: print(
+            f"selftest: seed {sd}: {o.name}: {len(o.caught_by)} invariants flagged it "
+            f"({o.seconds:.1f} s)", file=stderr))
     print(f"seed × entry matrix ({get_profile(profile).name} profile, shrinking off): the number "
           f"of deciding invariants that caught each bug; -- a missed bug, !! a flagged control",
           file=stdout)
