@@ -218,7 +218,7 @@ def test_report_names_a_hole():
 
 
 def test_run_wide_pool_keeps_every_target_and_shares_geometries():
-    from convwitness.run.runner import run_schedules
+    from convwitness.run.covering import run_schedules
     caps = load_adapter("reference").capabilities
     sched = run_schedules(caps, QUICK, 0)
     distinct = {s for specs in sched.values() for s in specs}

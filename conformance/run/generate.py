@@ -71,7 +71,8 @@ class Suite:
     def _settings(self, test, inv_id: str | None = None):
         import hypothesis
         from hypothesis.errors import Unsatisfiable
-        from .runner import covering_examples, free_examples, hypothesis_settings, with_examples
+        from .covering import covering_examples, free_examples, with_examples
+        from .runner import hypothesis_settings
         explicit = []
         if inv_id is not None:
             explicit = covering_examples(self.adapter.capabilities, self.invariant(inv_id),
