@@ -19,6 +19,9 @@ from .zoo_backward import (BiasGradIntoWeight, BiasGradSampleZero, DepthwiseWeig
                            StrideTailDropped, UpstreamGradClipped, WeightGradIgnoresDilation,
                            WeightGradIgnoresStride, WeightGradMean, WeightGradRace,
                            ZeroBatchWeightGradUninitialised)
+from .zoo_coincidence import (BatchChannelsSwapped, DepthwiseMultiplierOrder,
+                              PatchKernelTransposed, SquareInputAxesSwapped,
+                              WeightGradChannelsSwapped)
 from .zoo_forward import (AccumulateFloat16, BatchSampleZeroReused, BiasMissingLastChannel,
                           ChannelThresholdSkip, DepthwiseDilatedStridedShape, DilationAxesSwapped,
                           DilationIgnoredWhenStrided, GroupChannelsMixed, IntermediateOverflow,
@@ -48,6 +51,9 @@ _BUGS = (
     OutputFloat64, NanReadAsZero, ViewReadAsPacked,
     # transposed
     TransposedIgnoresDilation, OutputPaddingAsInputPadding,
+    # fast paths chosen by a shape coincidence (C27)
+    WeightGradChannelsSwapped, SquareInputAxesSwapped, DepthwiseMultiplierOrder,
+    BatchChannelsSwapped, PatchKernelTransposed,
 )
 
 ZOO: dict[str, type] = {cls.name: cls for cls in _BUGS}

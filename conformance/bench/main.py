@@ -1,4 +1,4 @@
-"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|all]``).
+"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|signatures|all]``).
 
 They print measured figures side by side from one run on this machine; nothing here
 is a pass/fail test.
@@ -9,6 +9,8 @@ is a pass/fail test.
 * isolation: per-call overhead of the worker process against in-process calls.
 * harness: what the harness adds per example beyond the adapter's and the
   reference's own work, measured with an instant adapter.
+* signatures: distinct call signatures of a quick run on the built-in adapters, and the
+  wall time of a simulated compile-per-shape port (:mod:`.signatures`).
 """
 from __future__ import annotations
 
@@ -202,6 +204,9 @@ def main(argv=None):
         bench_isolation()
     if which in ("harness", "all"):
         bench_harness()
+    if which in ("signatures", "all"):
+        from .signatures import bench_signatures
+        bench_signatures()
 
 
 if __name__ == "__main__":

@@ -104,6 +104,9 @@ class Adapter:
                 f"adapter {self.name}: capabilities claim passes {missing} but the object has no "
                 f"{' / '.join(m + '()' for m in missing)} method; add the method or drop the claim")
         self.capabilities = caps
+        #: distinct call signatures seen (method, array shapes and dtypes, keywords): what a
+        #: port that compiles per shape pays for
+        self.signatures: set = set()
 
     # -- identity ------------------------------------------------------------------
     @property
@@ -151,6 +154,8 @@ class Adapter:
 
     def _call(self, method: str, fn, *args, **kwargs):
         """Call the implementation; its own exceptions become AdapterRaised with the traceback."""
+        self.signatures.add((method, tuple(None if a is None else (np.shape(a), str(np.asarray(a).dtype))
+                                           for a in args), tuple(sorted(kwargs.items()))))
         try:
             return fn(*args, **kwargs)
         except (AdapterCrashed, AdapterTimeout, AdapterRaised, AdapterOutputError):

@@ -7,7 +7,10 @@ from __future__ import annotations
 
 from ..geometry.spec import ConvSpec
 
-__all__ = ["feature_of"]
+#: channel counts on either side of vector and tile widths (8, 16, 32): class C13
+THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
+
+__all__ = ["feature_of", "reach_of", "pair_tags", "PAIRS"]
 
 
 def feature_of(spec: ConvSpec) -> dict:
@@ -31,3 +34,91 @@ def feature_of(spec: ConvSpec) -> dict:
         "bias": "bias" if spec.bias else "nobias",
         "transposed": "transposed" if spec.transposed else "conv",
     }
+
+
+def _axes(spec: ConvSpec):
+    return list(zip(spec.input_size, spec.kernel_size, spec.stride, spec.dilation,
+                    spec.effective_kernel, spec.padding, spec.output_padding))
+
+
+def reach_of(spec: ConvSpec) -> set:
+    """What a drawn spec reaches, as ``category:name`` tags: the features, coincidences,
+    channel structure, dtype, layout, ndim and claimed corners that hold for it.
+
+    Read off the spec alone (not from how it was drawn), so a tag is never claimed for a
+    geometry that does not have it. The names are those of
+    :mod:`convwitness.cases.draw` (FEATURES, COINCIDENCES, GROUPINGS).
+    """
+    ax = _axes(spec)
+    conv = not spec.transposed
+    f = set()
+    if spec.batch == 0:
+        f.add("zero_batch")
+    if conv and any(s > 1 and r for (_, _, s, *_), r in zip(ax, spec.remainder)):
+        f.add("remainder")
+    if any(s > e for _, _, s, _, e, _, _ in ax):
+        f.add("stride_over_kernel")
+    if spec.ndim > 1 and len({a[:4] + (a[5],) for a in ax}) > 1 and len({a[0] for a in ax}) > 1:
+        f.add("anisotropic")
+    if any(lo > hi >= 0 for *_, (lo, hi), _ in ax):
+        f.add("pad_before")
+    if any(hi > lo >= 0 for *_, (lo, hi), _ in ax):
+        f.add("pad_after")
+    if conv and any(lo >= e for _, _, _, _, e, (lo, _), _ in ax):
+        f.add("window_in_padding")
+    if conv and any(L + lo + hi == e and k > 1 for L, k, _, _, e, (lo, hi), _ in ax):
+        f.add("kernel_fills_input")
+    if any(L == 1 for L, *_ in ax):
+        f.add("unit_length")
+    if all(k == 1 for _, k, *_ in ax):
+        f.add("pointwise")
+    if any(d >= 2 and s >= 2 for _, _, s, d, *_ in ax):
+        f.add("dilated_strided")
+    if all(k == 3 and s == 1 and d == 1 and lo == hi and lo in (0, 1)
+           for _, k, s, d, _, (lo, hi), _ in ax):
+        f.add("everyday")
+    if not f:
+        f.add("plain")
+    c = set()
+    G = spec.groups
+    cg, og = spec.in_channels // G, spec.out_channels // G
+    if cg == og > 1:
+        c.add("equal_channels_grouped" if G > 1 else "equal_channels")
+        c.add("equal_channels")
+    if spec.batch and spec.batch == spec.in_channels:
+        c.add("batch_equals_channels")
+    if spec.ndim > 1 and len({a[:4] + a[5:] for a in ax}) == 1:
+        c.add("square_input")
+    if spec.ndim > 1 and len({k for _, k, *_ in ax}) == 1 and ax[0][1] > 1:
+        c.add("square_kernel")
+    if all(s == k > 1 for _, k, s, *_ in ax):
+        c.add("stride_equals_kernel")
+    if conv and all(n == 1 for n in spec.output_size):
+        c.add("output_one")
+    g = {"single"} if G == 1 else {"depthwise" if cg == 1 and og == 1 else
+                                   "depthwise_multiplier" if cg == 1 else "grouped"}
+    corners = set()
+    if any(min(lo, hi) < 0 for *_, (lo, hi), _ in ax):
+        corners.add("negative_padding")
+    if spec.transposed and any(op > 0 and op == max(s, d) - 1 for _, _, s, d, _, _, op in ax):
+        corners.add("max_output_padding")
+    tags = {f"feature:{x}" for x in f} | {f"coincidence:{x}" for x in c}
+    tags |= {f"grouping:{x}" for x in g} | {f"corner:{x}" for x in corners}
+    tags |= {f"dtype:{spec.dtype}", f"layout:{spec.layout}", f"ndim:{spec.ndim}"}
+    if G == 1 and spec.in_channels in THRESHOLD_COUNTS:
+        tags.add(f"width:{spec.in_channels}")
+    return tags
+
+
+#: feature pairs whose joint coverage the report gives per invariant, as a percentage of
+#: the value combinations the invariant admits (name -> the two feature_of keys)
+PAIRS = {"stride×dilation": ("stride", "dilation"), "groups×padding": ("groups", "padding"),
+         "remainder×dilation": ("remainder", "dilation"), "layout×groups": ("layout", "groups"),
+         "dtype×ndim": ("dtype", "ndim")}
+
+
+def pair_tags(spec: ConvSpec) -> set:
+    """``pair:<name>=<a>×<b>`` tags of :data:`PAIRS` for a spec (one per padding kind
+    when the axes pad differently)."""
+    fo = {k: v.split("+") for k, v in feature_of(spec).items()}
+    return {f"pair:{name}={x}×{y}" for name, (a, b) in PAIRS.items() for x in fo[a] for y in fo[b]}

@@ -64,6 +64,8 @@ def _parser() -> argparse.ArgumentParser:
     st.add_argument("--profile", default="quick")
     st.add_argument("--seed", type=int, default=0)
     st.add_argument("--only", default=None, help="zoo entries to run (comma-separated names)")
+    st.add_argument("--seeds", default=None, metavar="SEEDS",
+                    help="run the zoo once per seed (e.g. 0-4 or 0,2,7) and print the bug × seed matrix")
     _extend_sub(sub)
     return p
 
@@ -277,7 +279,8 @@ def cmd_adapters(args, stdout, stderr) -> int:
 
 def cmd_selftest(args, stdout, stderr) -> int:
     from ..run.selftest import selftest
-    return selftest(profile=args.profile, seed=args.seed, only=args.only, stdout=stdout, stderr=stderr)
+    return selftest(profile=args.profile, seed=args.seed, only=args.only, stdout=stdout, stderr=stderr,
+                    seeds=args.seeds)
 
 
 _HANDLERS = {"run": cmd_run, "replay": cmd_replay, "invariants": cmd_invariants, "rebuild": cmd_rebuild,

@@ -85,6 +85,7 @@ def result_to_dict(r) -> dict:
         "traceback": r.traceback, "output": r.output, "coverage": dict(r.coverage),
         **({"same_cause_as": r.same_cause_as} if getattr(r, "same_cause_as", "") else {}),
         **({"further_causes": list(r.further)} if getattr(r, "further", None) else {}),
+        **({"reach": r.reach} if getattr(r, "reach", None) else {}),
     }
 
 
@@ -122,6 +123,8 @@ def build_report(adapter, results, *, profile, seed, started: float, duration_s:
         "invariants": invs,
         "causes": group_causes(invs),
         "coverage": cov,
+        **_reach(invs),
+        **({"signatures": len(adapter.signatures)} if getattr(adapter, "signatures", None) else {}),
     }
     return with_verdict(doc)
 
@@ -134,6 +137,12 @@ def with_verdict(doc: dict) -> dict:
     doc["conformant"] = j.conformant
     doc["verdict"] = j.to_dict(doc)
     return doc
+
+
+def _reach(invs: list) -> dict:
+    from .reach import summarize
+    reach = summarize(invs)
+    return {"reach": reach} if reach else {}
 
 
 def _tool_version() -> str:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import re
 
 from .verdicts import judge, label, worst_text
+from .reach import markdown_lines as reach_lines
 
 __all__ = ["render", "md_text", "md_code"]
 
@@ -100,6 +101,7 @@ def render(doc: dict, report_dir: str | None = None) -> str:
                          f"{md_text(c['signature'].partition(': ')[2])} | "
                          f"{md_code(c['witness']) if c['witness'] else ''} |")
         lines.append("")
+    lines += reach_lines(doc)
     lines += ["<details><summary>All invariants</summary>", "",
               "| invariant | verdict | examples | skipped | worst share | examples/s |",
               "|---|---|---:|---:|---:|---:|"]

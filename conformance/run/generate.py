@@ -55,6 +55,7 @@ class Suite:
             pytest.skip(f"verdict unavailable: {exc}", allow_module_level=True)
         self._contexts: dict = {}
         self._checked: dict = {}        # invariant id -> geometries checked in this test
+        self._targets: dict = {}        # invariant id -> geometries to check (schedule + free)
         self.here = here
         self._failure = None            # (invariant id, case, Evidence or adapter fault)
 
@@ -67,11 +68,30 @@ class Suite:
         return self.invariant(inv_id).strategy(self.adapter.capabilities, self.profile)
 
     def settings(self, test):
-        """Apply the profile's hypothesis settings and the seed, as ``run`` does."""
+        """Apply the profile's hypothesis settings and the seed, as ``run`` does.
+
+        ``@suite.settings("forward.reference")`` also runs that invariant's covering
+        schedule first, as ``run`` does (suites generated before the schedule existed use
+        the bare ``@suite.settings`` and draw freely only)."""
+        if isinstance(test, str):
+            return functools.partial(self._settings, inv_id=test)
+        return self._settings(test)
+
+    def _settings(self, test, inv_id: str | None = None):
         import hypothesis
         from hypothesis.errors import Unsatisfiable
+        from .covering import covering_examples, free_examples, with_examples
         from .runner import hypothesis_settings
-        test = hypothesis_settings(self.profile, None)(test)
+        explicit = []
+        if inv_id is not None:
+            inv = self.invariant(inv_id)
+            explicit = covering_examples(inv.claims(self.adapter.capabilities), inv,
+                                         self.profile, self.seed)
+            test = with_examples(test, explicit)
+        free = free_examples(self.profile, explicit)
+        if inv_id is not None:          # as in `run`: the schedule, then the free search
+            self._targets[inv_id] = len(explicit) + free
+        test = hypothesis_settings(self.profile, None, max_examples=free)(test)
         if self.seed is not None:
             test = hypothesis.seed(self.seed)(test)
 
@@ -140,7 +160,7 @@ class Suite:
         from .runner import Enough
         inv, ctx = self.invariant(inv_id), self.context(inv_id)
         checked = self._checked.get(inv_id, 0)
-        if self._failure is None and checked >= self.profile.examples:
+        if self._failure is None and checked >= self._targets.get(inv_id, self.profile.examples):
             raise Enough()              # as in `run`: the profile's count of checked geometries
         worst = 0.0
         counted = False
@@ -249,7 +269,7 @@ Regenerate (do not edit by hand):
             lines.append(("# " + pline).rstrip())
         if inv.informational(adapter.capabilities):
             lines.append(f"@pytest.mark.xfail(reason={('information only: the adapter does not claim ' + inv.informational_unless)!r}, strict=False)")
-        lines += ["@suite.settings", f"@given(suite.examples({inv.id!r}))",
+        lines += [f"@suite.settings({inv.id!r})", f"@given(suite.examples({inv.id!r}))",
                   f"def {_name(inv.id)}(cases):",
                   f'    """{_doc(inv.statement)}"""',
                   f"    suite.check({inv.id!r}, cases)"]

@@ -24,7 +24,8 @@ from ..errors import AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterT
 from ..invariants.evidence import Evidence, InvariantFailure, verdict_of as _verdict_of
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
-from ..cases.features import feature_of
+from ..cases.features import feature_of, pair_tags, reach_of
+from .covering import covering_examples, free_examples, with_examples
 
 __all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted",
            "SKIP_CAP", "DECIDING_FAILURES"]
@@ -61,6 +62,8 @@ class InvariantResult:
     coverage: dict = field(default_factory=dict)
     same_cause_as: str = ""      # the invariant whose timeout/crash witness reproduced here
     further: list = field(default_factory=list)   # further causes (run/further.py)
+    #: targets the invariant could reach, pair spaces, and what it reached (tag -> count)
+    reach: dict = field(default_factory=dict)
 
     @property
     def counts(self) -> bool:
@@ -84,14 +87,16 @@ def select(caps, only=None) -> list[tuple[Invariant, str | None]]:
     return out
 
 
-def hypothesis_settings(profile: Profile, database_dir: str | None, *, shrink: bool = True):
-    """Settings of one invariant's test: up to SKIP_CAP x the profile's geometries are
-    drawn; the test body stops (``Enough``) once the profile's count is checked."""
+def hypothesis_settings(profile: Profile, database_dir: str | None, *, shrink: bool = True,
+                        max_examples: int | None = None):
+    """Settings of one invariant's test: up to SKIP_CAP x the free search's geometries
+    are drawn (``max_examples``, default the profile's); the test body stops (``Enough``)
+    once the planned count is checked."""
     phases = list(hypothesis.Phase)
     if not shrink:
         phases = [p for p in phases if p is not hypothesis.Phase.shrink]
     return settings(
-        max_examples=profile.examples * SKIP_CAP,
+        max_examples=(profile.examples if max_examples is None else max_examples) * SKIP_CAP,
         deadline=profile.deadline_ms,
         database=DirectoryBasedExampleDatabase(database_dir) if database_dir else None,
         suppress_health_check=list(HealthCheck),
@@ -141,6 +146,9 @@ class _Tally:
         self.vacuous = 0
         self.vacuous_why = ""
         self.hung = False
+        self.reach: Counter = Counter()
+        self.plan: dict = {}
+        self.target = 0              # geometries to check (set by hypothesis_test)
 
     def record(self, case, ev: Evidence):
         share = float(ev.share)
@@ -162,6 +170,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         tally.geometries += 1
         for k, v in feature_of(spec).items():
             tally.coverage[f"{k}={v}"] += 1
+        tally.reach.update(reach_of(spec) | pair_tags(spec))
 
     def body(cases):
         now = time.perf_counter()
@@ -170,7 +179,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         elif now - tally.started > profile.budget_s:
             tally.stopped = True
             raise BudgetExhausted(f"{inv.id} used its budget of {profile.budget_s:g} s")
-        if tally.failure is None and tally.geometries >= profile.examples:
+        if tally.failure is None and tally.geometries >= tally.target:
             raise Enough()
         tally.drawn += 1
         spec = cases[0].spec
@@ -186,6 +195,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
                 tally.hung = True
                 tally.examples += 1
                 tally.coverage[f"kind={case.kind}"] += 1
+                tally.reach[f"kind:{case.kind}"] += 1
                 if not checked_here:
                     geometry_checked(spec)
                 raise StopSearch(str(exc)) from None
@@ -193,6 +203,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
                 tally.failure = (case, exc)
                 tally.examples += 1
                 tally.coverage[f"kind={case.kind}"] += 1
+                tally.reach[f"kind:{case.kind}"] += 1
                 if not checked_here:
                     geometry_checked(spec)
                 raise
@@ -202,6 +213,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
                 continue
             tally.examples += 1
             tally.coverage[f"kind={case.kind}"] += 1
+            tally.reach[f"kind:{case.kind}"] += 1
             if not checked_here:
                 checked_here = True
                 geometry_checked(spec)
@@ -217,7 +229,11 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
             hypothesis.target(worst, label="share of bound")
 
     test = given(strategy)(body)
-    test = hypothesis_settings(profile, database_dir, shrink=shrink)(test)
+    explicit = covering_examples(inv.claims(adapter.capabilities), inv, profile, seed, tally)
+    test = with_examples(test, explicit)
+    free = free_examples(profile, explicit)
+    tally.target = len(explicit) + free     # checked geometries: the schedule, then the free search
+    test = hypothesis_settings(profile, database_dir, shrink=shrink, max_examples=free)(test)
     if seed is not None:
         test = hypothesis.seed(seed)(test)
     return test, tally
@@ -314,6 +330,8 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     res.shares = tally.shares
     res.coverage = dict(tally.coverage)
     _account_for_skips(res, tally, profile)
+    if tally.plan:
+        res.reach = dict(tally.plan, reached=dict(sorted(tally.reach.items())))
     if tally.worst is not None:
         res.worst_share = float(tally.worst.share)
         res.worst_bound = tally.worst.message.splitlines()[0] if tally.worst.message else ""
@@ -363,8 +381,9 @@ def _account_for_skips(res: InvariantResult, tally: _Tally, profile: Profile) ->
         else:
             res.reason = "no example was checked" + (f" ({res.reason})" if res.reason else "")
         return
-    if tally.skipped and tally.geometries < profile.examples and not tally.stopped:
-        short = (f"checked {tally.geometries} of the profile's {profile.examples} geometries: "
+    planned = tally.target or profile.examples
+    if tally.skipped and tally.geometries < planned and not tally.stopped:
+        short = (f"checked {tally.geometries} of the {planned} planned geometries: "
                  f"{tally.skipped} example(s) skipped in {tally.drawn} drawn (cap {SKIP_CAP}x)")
         res.reason = f"{short}; {res.reason}" if res.reason else short
 

@@ -26,7 +26,7 @@ from .certify import certify
 from ..boundary.loading import load_adapter
 from ..cases.profiles import get_profile
 
-__all__ = ["selftest", "run_zoo", "ZooOutcome", "detection_matrix"]
+__all__ = ["selftest", "run_zoo", "ZooOutcome", "detection_matrix", "seed_matrix", "parse_seeds"]
 
 FLAGGED = ("fail", "error", "crash", "timeout")
 
@@ -111,10 +111,74 @@ def detection_matrix(outcomes: list[ZooOutcome]) -> str:
     return "\n".join(lines)
 
 
+def parse_seeds(text: str) -> list[int]:
+    """``"0-4"``, ``"0,2,7"`` or a mix (``"0-2,9"``) as a list of seeds."""
+    from ..errors import ConvWitnessError
+    out: list[int] = []
+    try:
+        for part in (p.strip() for p in str(text).split(",")):
+            lo, dash, hi = part.partition("-")
+            out += list(range(int(lo), int(hi) + 1)) if dash else [int(lo)]
+    except ValueError:
+        raise ConvWitnessError(f"selftest --seeds={text!r}: expected seeds such as 0-4 or 0,2,7 "
+                               f"(non-negative integers and ranges)") from None
+    if not out or min(out) < 0:
+        raise ConvWitnessError(f"selftest --seeds={text!r}: expected at least one non-negative "
+                               f"seed, e.g. 0-4")
+    return sorted(set(out))
+
+
+def seed_matrix(by_seed: dict) -> str:
+    """The bug × seed matrix: per seed, how many deciding invariants caught the entry
+    (a control shows how many flagged it: it must be 0 everywhere)."""
+    seeds = list(by_seed)
+    rows = by_seed[seeds[0]]
+    width = max([len(o.name) for o in rows] + [8])
+    lines = [" " * (width + 6) + " ".join(f"s{sd:<3}" for sd in seeds) + "  all"]
+    for i, o in enumerate(rows):
+        cells = [by_seed[sd][i] for sd in seeds]
+        marks = " ".join(f"{len(c.caught_by):>3} " if c.ok else
+                         (" !! " if c.control else " -- ") for c in cells)
+        tag = "ctrl" if o.control else (o.bug_class or "bug")
+        lines.append(f"{o.name:<{width}} {tag:>4}  {marks}  {'ok' if all(c.ok for c in cells) else 'NO'}")
+    return "\n".join(lines)
+
+
+def _seeds_selftest(profile, seeds, only, stdout, stderr) -> int:
+    t0 = time.perf_counter()
+    by_seed = {}
+    for sd in seeds:
+        by_seed[sd] = run_zoo(profile, sd, only, on_done=lambda o, sd=sd: print(
+            f"selftest: seed {sd}: {o.name}: {len(o.caught_by)} invariants flagged it "
+            f"({o.seconds:.1f} s)", file=stderr))
+    print(f"seed × entry matrix ({get_profile(profile).name} profile, shrinking off): the number "
+          f"of deciding invariants that caught each bug; -- a missed bug, !! a flagged control",
+          file=stdout)
+    print(seed_matrix(by_seed), file=stdout)
+    bugs = [o.name for o in by_seed[seeds[0]] if not o.control]
+    cells = [(sd, o) for sd in seeds for o in by_seed[sd]]
+    missed = [(sd, o.name) for sd, o in cells if not o.control and not o.caught_by]
+    flagged = [(sd, o) for sd, o in cells if o.control and o.caught_by]
+    full = len(bugs) * len(seeds)
+    print(f"\n{full - len(missed)} of {full} (bug, seed) cells caught on seeds "
+          f"{','.join(map(str, seeds))}; {len(flagged)} false alarms "
+          f"({time.perf_counter() - t0:.0f} s)", file=stdout)
+    for sd, name in missed:
+        print(f"MISSED: {name} on seed {sd}", file=stdout)
+    for sd, o in flagged:
+        print(f"FALSE ALARM: {', '.join(o.caught_by)} flagged {o.name} on seed {sd}", file=stdout)
+    return 0 if not missed and not flagged else 1
+
+
 def selftest(profile="quick", seed: int | None = 0, only: str | None = None,
-             stdout=None, stderr=None) -> int:
+             stdout=None, stderr=None, seeds=None) -> int:
+    """Run the zoo and print the detection matrix; with ``seeds`` (a list or "0-4"), run
+    it once per seed and print the bug × seed matrix instead."""
     stdout = stdout or sys.stdout
     stderr = stderr or sys.stderr
+    if seeds is not None:
+        seeds = parse_seeds(seeds) if isinstance(seeds, str) else list(seeds)
+        return _seeds_selftest(profile, seeds, only, stdout, stderr)
     t0 = time.perf_counter()
 
     def tell(o: ZooOutcome):

@@ -1,0 +1,198 @@
+"""The covering schedule: explicit examples that reach every admitted target first.
+
+Hypothesis's free search reaches a feature or coincidence with some probability per
+draw; a claimed corner that one invariant in twenty draws (zero batch, say) is missed
+on many seeds. So every invariant first runs a short *schedule* of explicit examples,
+built deterministically from the capabilities, the invariant's needs, the profile and
+the seed, then hypothesis's free search (the runner adds them as ``@example``).
+
+The targets (:func:`targets`) are ``category:name`` tags, as :func:`reach_of` reads
+them off a spec: every feature, coincidence, channel structure, dtype, layout, ndim and
+claimed corner (negative padding; the largest legal output padding) the invariant can
+draw, C_in on either side of the vector and tile widths (``width:``, with one group),
+and every value kind it allows (the dtype's range end is the ``near_max`` kind).
+The schedule is greedy: each entry forces one not-yet-reached value of every category
+at once (the builder ignores a forced choice it cannot honour), keeps the geometry if
+it reaches something new, and falls back to forcing one target alone; a target that
+no try reaches stays a hole, which the report names.
+"""
+from __future__ import annotations
+
+import zlib
+
+from ..geometry.capabilities import Capabilities
+from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
+                   dtypes_for, features_for, groupings_for, satisfies)
+from .features import reach_of
+from .profiles import Profile
+
+__all__ = ["targets", "schedule", "value_kinds", "pair_space", "MAX_ENTRIES"]
+
+MAX_ENTRIES = 24        # explicit geometries per invariant at most
+TRIES = 12              # seeded tries per forced combination
+
+# forced builder choices that produce a tag (tags not listed force their own label)
+_CORNER_FORCE = {"negative_padding": {"asymmetric": True, "pad_lo": "min", "pad": "min"},
+                 "max_output_padding": {"output_padding": "max", "stride": "max"}}
+
+
+def _ndims(caps: Capabilities, needs: Needs) -> list[int]:
+    return sorted(caps.ndims if needs.ndims is None else set(caps.ndims) & set(needs.ndims))
+
+
+def _layouts(caps: Capabilities, needs: Needs) -> list[str]:
+    return sorted(caps.layouts if needs.layouts is None else set(caps.layouts) & set(needs.layouts))
+
+
+def targets(caps: Capabilities, needs: Needs) -> list[str]:
+    """Every tag this invariant may reach (structural tags, then ``kind:`` tags)."""
+    out: list[str] = []
+
+    def add(tag):
+        if tag not in out:
+            out.append(tag)
+    ndims = _ndims(caps, needs)
+    for n in ndims:
+        for f in features_for(caps, needs, n):
+            if f != "plain":        # "nothing special": not a target of its own
+                add(f"feature:{f}")
+    for n in ndims:
+        for f in features_for(caps, needs, n):
+            for c in coincidences_for(caps, needs, n, f)[1:]:
+                add(f"coincidence:{c}")
+                if c == "equal_channels" and "grouped" in groupings_for(caps, needs, c):
+                    add("coincidence:equal_channels_grouped")
+    for g in groupings_for(caps, needs):
+        add(f"grouping:{g}")
+    for d in dtypes_for(caps, needs):
+        add(f"dtype:{d}")
+    for lay in _layouts(caps, needs):
+        add(f"layout:{lay}")
+    for n in ndims:
+        add(f"ndim:{n}")
+    if "single" in groupings_for(caps, needs):
+        for c in THRESHOLD_COUNTS:          # C_in on either side of vector and tile widths
+            add(f"width:{c}")
+    if "negative" in caps.padding and not needs.transposed and needs.negative_padding is not False \
+            and needs.padding is not False:
+        add("corner:negative_padding")
+    if needs.transposed and caps.output_padding and (caps.stride or caps.dilation) \
+            and needs.stride is not False:
+        add("corner:max_output_padding")
+    for k in needs.kinds:
+        add(f"kind:{k}")
+    return out
+
+
+def _force(tag: str) -> dict:
+    cat, _, name = tag.partition(":")
+    if cat == "corner":
+        return dict(_CORNER_FORCE[name])
+    if cat == "coincidence" and name == "equal_channels_grouped":
+        return {"coincidence": "equal_channels", "grouping": "grouped"}
+    if cat == "ndim":
+        return {"ndim": int(name)}
+    if cat == "width":
+        return {"grouping": "single", "channel_counts": "threshold", "channels_in": int(name)}
+    return {cat: name}
+
+
+def _try(caps, profile, needs, forced: dict, seed: int, wanted: set):
+    """The first seeded geometry under ``forced`` that reaches one of ``wanted``, and what
+    it reaches of them (None, empty set when no try does)."""
+    for t in range(TRIES):
+        try:
+            spec = build_spec(RngPicker(seed * 7919 + t, forced), caps, profile, needs)
+        except Reject:
+            continue
+        new = reach_of(spec) & wanted
+        if new:
+            return spec, new
+    return None, set()
+
+
+def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | None = 0,
+             salt: str = "", pool: list | None = None) -> list:
+    """The explicit geometries (specs) that reach every structural target, in order.
+
+    With ``pool`` (a list of ``(spec, tags)`` shared by the invariants of a run), the
+    geometries of earlier invariants that meet these needs are taken first, greedily by
+    how many unreached targets each adds; fresh geometries are added to the pool."""
+    base = zlib.crc32(f"{salt}/{seed or 0}".encode())
+    remaining = [t for t in targets(caps, needs) if not t.startswith("kind:")]
+    specs = []
+    if pool:
+        usable = [(sp, tags) for sp, tags in pool if satisfies(sp, caps, profile, needs)]
+        while remaining and len(specs) < MAX_ENTRIES and usable:
+            want = set(remaining)
+            gain, best = max(((len(tags & want), -i) for i, (_, tags) in enumerate(usable)),
+                             default=(0, 0))
+            if gain == 0:
+                break
+            sp, tags = usable.pop(-best)
+            specs.append(sp)
+            remaining = [t for t in remaining if t not in tags]
+    step = 0
+    while remaining and len(specs) < MAX_ENTRIES:
+        step += 1
+        # one unreached value of every category at once, then the first target alone
+        forced: dict = {}
+        seen_cats = set()
+        for t in remaining:
+            cat = t.partition(":")[0]
+            if cat not in seen_cats:
+                seen_cats.add(cat)
+                for k, v in _force(t).items():
+                    forced.setdefault(k, v)
+        spec, new = _try(caps, profile, needs, forced, base + step, set(remaining))
+        if not new:
+            spec, new = _try(caps, profile, needs, _force(remaining[0]), base + step + 10007,
+                             {remaining[0]})
+            if new:
+                new = reach_of(spec) & set(remaining)
+            else:
+                remaining.pop(0)        # unreachable here: the report names the hole
+                continue
+        specs.append(spec)
+        if pool is not None:
+            pool.append((spec, frozenset(reach_of(spec))))
+        remaining = [t for t in remaining if t not in new]
+    return specs
+
+
+def value_kinds(needs: Needs, entries: int, per_entry: int) -> list[list[str]]:
+    """The value kinds of each entry's cases: every allowed kind, in turn."""
+    kinds = list(needs.kinds)
+    return [[kinds[(i * per_entry + j) % len(kinds)] for j in range(per_entry)]
+            for i in range(entries)]
+
+
+def _values(caps: Capabilities, needs: Needs) -> dict:
+    """The values each :func:`feature_of` key may take for this invariant."""
+    stride = caps.stride and needs.stride is not False
+    dil = caps.dilation and needs.dilation is not False
+    grouping = {"single": "single", "grouped": "grouped", "depthwise": "depthwise",
+                "depthwise_multiplier": "depthwise"}
+    pads = ["none"] if not needs.padding else []
+    if needs.padding is not False:
+        pads += [k for k in ("symmetric", "asymmetric") if k in caps.padding]
+        if "negative" in caps.padding and not needs.transposed and needs.negative_padding is not False:
+            pads.append("negative")
+    return {
+        "stride": (["unit"] if not needs.stride else []) + (["strided"] if stride else []),
+        "dilation": (["none"] if not needs.dilation else []) + (["dilated"] if dil else []),
+        "groups": sorted({grouping[g] for g in groupings_for(caps, needs)}),
+        "padding": pads,
+        "remainder": ["zero"] + (["nonzero"] if stride and not needs.transposed else []),
+        "layout": _layouts(caps, needs),
+        "dtype": dtypes_for(caps, needs),
+        "ndim": [str(n) for n in _ndims(caps, needs)],
+    }
+
+
+def pair_space(caps: Capabilities, needs: Needs) -> dict:
+    """Per pair of :data:`~convwitness.cases.features.PAIRS`, the combinations
+    (``a×b``) this invariant admits: the denominator of its pair coverage."""
+    from .features import PAIRS
+    vals = _values(caps, needs)
+    return {name: [f"{x}×{y}" for x in vals[a] for y in vals[b]] for name, (a, b) in PAIRS.items()}

@@ -1,0 +1,74 @@
+"""The covering schedule in a run: explicit examples before hypothesis's free search.
+
+:func:`covering_examples` turns an invariant's schedule (:mod:`convwitness.cases.schedule`)
+into tuples of Cases that the runner and the generated suites add as ``@example``;
+:func:`run_schedules` builds the schedules of all admitted invariants over one run-wide
+pool of geometries; :func:`free_examples` is what is left to hypothesis's free search.
+"""
+from __future__ import annotations
+
+import zlib
+
+import hypothesis
+
+from ..cases.profiles import Profile
+from ..invariants import Invariant, catalogue
+
+__all__ = ["covering_examples", "run_schedules", "free_examples", "with_examples"]
+
+_SCHEDULES: dict = {}
+
+
+def run_schedules(caps, profile: Profile, seed) -> dict:
+    """The covering schedules of every invariant the capabilities admit, built in catalogue
+    order over one run-wide pool of geometries: an invariant first reuses the geometries of
+    the invariants before it (fewer distinct call signatures for ports that compile per
+    shape). A function of (capabilities, profile, seed) alone, so ``run``, ``--only``,
+    shards and generated suites all get the same schedule for an invariant."""
+    from ..cases.schedule import schedule
+    key = (caps, profile, seed)
+    try:
+        if key in _SCHEDULES:
+            return _SCHEDULES[key]
+    except TypeError:               # unhashable capabilities: build, do not cache
+        key = None
+    pool: list = []
+    out = {inv.id: schedule(caps, profile, inv.needs_for(caps), seed, inv.id, pool)
+           for inv in catalogue() if inv.cases is None and not inv.refusal(caps)}
+    if key is not None:
+        _SCHEDULES[key] = out
+    return out
+
+
+def free_examples(profile: Profile, explicit: list) -> int:
+    """Hypothesis's free search after the schedule: the schedule's geometries replace part
+    of it, never more than half."""
+    return max(profile.examples - len(explicit), profile.examples // 2)
+
+
+def with_examples(test, explicit: list):
+    """``test`` (a ``@given`` test) with the schedule as explicit examples, in order."""
+    for cases in reversed(explicit):
+        test = hypothesis.example(cases)(test)
+    return test
+
+
+def covering_examples(caps, inv: Invariant, profile: Profile, seed, tally=None) -> list:
+    """The covering schedule of ``inv`` as tuples of Cases (run before the free search);
+    invariants with strategies of their own (``cases=``) have none."""
+    if inv.cases is not None:
+        return []
+    from ..cases.schedule import pair_space, schedule, targets, value_kinds
+    from ..cases.strategies import make_case
+    needs = inv.needs_for(caps)
+    specs = run_schedules(caps, profile, seed).get(inv.id)
+    if specs is None:
+        specs = schedule(caps, profile, needs, seed, inv.id)
+    if tally is not None:           # the runner's tally: what the report's reach needs
+        tally.plan = {"targets": targets(caps, needs), "pairs": pair_space(caps, needs),
+                      "scheduled": len(specs)}
+    out = []
+    for i, (spec, kinds) in enumerate(zip(specs, value_kinds(needs, len(specs), profile.values))):
+        out.append(tuple(make_case(spec, k, zlib.crc32(f"{inv.id}/{seed}/{i}/{j}".encode()))
+                         for j, k in enumerate(kinds)))
+    return out

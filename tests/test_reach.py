@@ -1,0 +1,232 @@
+"""Coincidences, the covering schedule and claimed corners (issue 11).
+
+Sources beside each check:
+- the coincidences are those of shared/BUG-CLASSES.md §4 item 20 and class C27 (which
+  says: common practice, no source — libraries dispatch fast kernels on such equalities);
+- output sizes from Dumoulin & Visin 2016, Relationship 15 (non-transposed) and 14
+  (transposed), as ``ConvSpec.output_size`` computes them, re-derived here by hand;
+- the zero-batch finding is the issue's own: a library that raises on N = 0 while
+  claiming zero_batch passed ``forward.contract`` because no N = 0 geometry was drawn.
+"""
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pytest
+
+from convwitness import ConvSpec
+from convwitness.adapters.reference import ReferenceAdapter
+from convwitness.adapters.zoo_coincidence import (BatchChannelsSwapped, DepthwiseMultiplierOrder,
+                                                  PatchKernelTransposed, SquareInputAxesSwapped,
+                                                  WeightGradChannelsSwapped)
+from convwitness.boundary.loading import load_adapter
+from convwitness.cases.draw import COINCIDENCES
+from convwitness.cases.features import reach_of
+from convwitness.cases.profiles import get_profile
+from convwitness.cases.schedule import schedule, targets
+from convwitness.invariants import catalogue, get
+from convwitness.numerics import reference as ref
+from convwitness.run.runner import run_invariant
+from convwitness.run.selftest import parse_seeds, selftest
+from convwitness.errors import ConvWitnessError
+
+QUICK = get_profile("quick")
+
+
+def _spec(**kw):
+    base = dict(batch=2, in_channels=3, out_channels=5, input_size=(6, 7), kernel_size=(3, 2),
+                stride=1, padding=0, dilation=1, groups=1, bias=False, dtype="float64")
+    base.update(kw)
+    return ConvSpec(**base)
+
+
+# -- the classifier against hand-derived geometries (BUG-CLASSES.md §4 item 20) ----------
+def test_coincidences_are_read_off_the_geometry():
+    assert "coincidence:equal_channels" in reach_of(_spec(in_channels=4, out_channels=4))
+    grouped = reach_of(_spec(in_channels=6, out_channels=6, groups=3))     # 2 -> 2 per group
+    assert {"coincidence:equal_channels", "coincidence:equal_channels_grouped",
+            "grouping:grouped"} <= grouped
+    # depthwise: one channel per group is not a coincidence "> 1"
+    assert "coincidence:equal_channels" not in reach_of(_spec(in_channels=3, out_channels=3, groups=3))
+    assert "grouping:depthwise_multiplier" in reach_of(_spec(in_channels=3, out_channels=6, groups=3))
+    assert "coincidence:batch_equals_channels" in reach_of(_spec(batch=3))
+    assert "coincidence:square_input" in reach_of(_spec(input_size=(5, 5), kernel_size=(3, 3)))
+    assert "coincidence:square_input" not in reach_of(_spec(input_size=(5, 5)))     # k differs
+    assert "coincidence:square_kernel" in reach_of(_spec(kernel_size=(2, 2)))
+    assert "coincidence:stride_equals_kernel" in reach_of(_spec(kernel_size=(2, 3), stride=(2, 3)))
+    # Relationship 15: L_out = floor((6 + 0 - 6)/1) + 1 = 1 and, with e = 2(4-1)+1 = 7,
+    # floor((7 + 0 - 7)/1) + 1 = 1
+    one = _spec(kernel_size=(6, 4), dilation=(1, 2))
+    assert one.output_size == (1, 1) and "coincidence:output_one" in reach_of(one)
+    assert not {t for t in reach_of(_spec()) if t.startswith("coincidence:")}
+
+
+def test_corners_are_read_off_the_geometry():
+    assert "corner:negative_padding" in reach_of(_spec(padding=((-1, 0), (0, 0))))
+    assert "feature:zero_batch" in reach_of(_spec(batch=0))
+    assert "feature:window_in_padding" in reach_of(_spec(padding=((3, 0), (0, 0))))  # p_lo >= e = 3
+    # transposed, s = 3, d = 1: the largest legal output padding is max(s, d) - 1 = 2
+    tr = _spec(transposed=True, stride=(3, 1), output_padding=(2, 0))
+    assert "corner:max_output_padding" in reach_of(tr)
+    assert "corner:max_output_padding" not in reach_of(tr.replace(output_padding=(1, 0)))
+
+
+# -- the covering schedule ---------------------------------------------------------------
+@pytest.mark.parametrize("adapter", ["reference", "convwitness.adapters.zoo_numpy:NumpyTapAdapter"])
+def test_schedule_reaches_every_target_of_every_invariant(adapter):
+    caps = load_adapter(adapter).capabilities
+    seen = 0
+    for inv in catalogue():
+        if inv.refusal(caps) or inv.cases is not None:
+            continue
+        needs = inv.needs_for(caps)
+        specs = schedule(caps, QUICK, needs, seed=0, salt=inv.id)
+        reached = set().union(*(reach_of(s) for s in specs))
+        wanted = {t for t in targets(caps, needs) if not t.startswith("kind:")}
+        assert wanted <= reached, (inv.id, sorted(wanted - reached))
+        assert all(caps.admits(s) for s in specs)
+        seen += 1
+    assert seen >= 20
+
+
+def test_schedule_targets_name_every_coincidence_for_a_plain_2d_claim():
+    caps = load_adapter("reference").capabilities
+    t = targets(caps, get("forward.reference").needs_for(caps))
+    assert {f"coincidence:{c}" for c in COINCIDENCES} <= set(t)
+    assert "corner:negative_padding" in t or "negative" not in caps.padding
+
+
+def test_schedule_is_a_function_of_its_inputs():
+    caps = load_adapter("reference").capabilities
+    needs = get("forward.reference").needs_for(caps)
+    a = schedule(caps, QUICK, needs, seed=3, salt="x")
+    assert a == schedule(caps, QUICK, needs, seed=3, salt="x")     # replayable without hypothesis
+
+
+class _RaisesOnEmptyBatch(ReferenceAdapter):
+    """Claims zero_batch (the reference's default) but raises on N = 0, as the library of
+    the issue's finding did."""
+    name = "raises-on-empty-batch"
+
+    def forward(self, x, w, b, **kw):
+        if x.shape[0] == 0:
+            raise ValueError("expected a non-empty batch")
+        return super().forward(x, w, b, **kw)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_claimed_zero_batch_is_reached_by_forward_contract_on_every_seed(seed):
+    a = load_adapter(_RaisesOnEmptyBatch())
+    assert a.capabilities.zero_batch
+    r = run_invariant(a, get("forward.contract"), QUICK, seed=seed, shrink=False)
+    assert r.verdict == "error", (r.verdict, r.message)
+    assert "non-empty batch" in r.message
+    assert r.witness["spec"]["batch"] == 0
+
+
+def test_report_reach_of_a_run_names_targets_and_what_was_reached():
+    r = run_invariant(load_adapter("reference"), get("forward.contract"), QUICK, seed=0)
+    assert r.verdict == "pass"
+    assert set(r.reach["targets"]) - {"feature:plain"} <= set(r.reach["reached"])
+    assert r.reach["reached"]["feature:zero_batch"] >= 1
+
+
+# -- the coincidence bugs are hidden behind their coincidence ----------------------------
+def _arrays(spec, seed=0):
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal(spec.x_shape)
+    w = rng.standard_normal(spec.w_shape)
+    g = rng.standard_normal(spec.y_shape)
+    return x, w, g
+
+
+def _forward_differs(cls, spec) -> bool:
+    x, w, _ = _arrays(spec)
+    kw = dict(stride=spec.stride, padding=spec.padding, dilation=spec.dilation, groups=spec.groups)
+    return not np.allclose(cls().forward(x, w, None, **kw), ref.forward(spec, x, w, None))
+
+
+def _grad_weight_differs(cls, spec) -> bool:
+    x, w, g = _arrays(spec)
+    kw = dict(stride=spec.stride, padding=spec.padding, dilation=spec.dilation, groups=spec.groups)
+    return not np.allclose(cls().backward(x, w, None, g, **kw)[1], ref.grad_weight(spec, x, g))
+
+
+@pytest.mark.parametrize("cls, differs, with_it, without_it", [
+    (WeightGradChannelsSwapped, _grad_weight_differs,
+     _spec(in_channels=6, out_channels=6, groups=3), _spec(in_channels=6, out_channels=9, groups=3)),
+    (WeightGradChannelsSwapped, _grad_weight_differs,
+     _spec(in_channels=4, out_channels=4), _spec(in_channels=4, out_channels=5)),
+    (SquareInputAxesSwapped, _forward_differs,
+     _spec(input_size=(5, 5), kernel_size=(3, 3)), _spec(input_size=(5, 6), kernel_size=(3, 3))),
+    (DepthwiseMultiplierOrder, _forward_differs,
+     _spec(in_channels=3, out_channels=6, groups=3), _spec(in_channels=3, out_channels=3, groups=3)),
+    (BatchChannelsSwapped, _forward_differs, _spec(batch=3), _spec(batch=2)),
+    (PatchKernelTransposed, _forward_differs,
+     _spec(kernel_size=(2, 2), stride=(2, 2)), _spec(kernel_size=(2, 2), stride=(1, 2))),
+])
+def test_coincidence_bug_shows_only_with_its_coincidence(cls, differs, with_it, without_it):
+    # the correct answer is the float64 reference; every shape is right in both geometries
+    assert differs(cls, with_it)
+    assert not differs(cls, without_it)
+
+
+# -- the seed matrix -----------------------------------------------------------------------
+def test_parse_seeds():
+    assert parse_seeds("0-4") == [0, 1, 2, 3, 4]
+    assert parse_seeds("0-2,9,1") == [0, 1, 2, 9]
+    with pytest.raises(ConvWitnessError, match="expected seeds such as 0-4"):
+        parse_seeds("zero")
+
+
+def test_seed_matrix_of_coincidence_bugs_is_full():
+    out = io.StringIO()
+    rc = selftest(seeds="0-1", only="reference,batch_channels_swapped,weight_grad_channels_swapped",
+                  stdout=out, stderr=io.StringIO())
+    text = out.getvalue()
+    assert rc == 0, text
+    assert "4 of 4 (bug, seed) cells caught" in text
+
+
+# -- the report's reach section -------------------------------------------------------------
+def test_report_reach_validates_against_its_json_schema_and_shows_in_summary_md():
+    # JSON Schema draft 2020-12 (json-schema.org), checked by the jsonschema library
+    from convwitness.report.document import validate_report
+    from convwitness.report.markdown import render
+    from convwitness.run.certify import certify
+    doc, _ = certify(load_adapter("reference"), profile="quick", seed=0,
+                     only="forward.contract,grad_weight.reference")
+    validate_report(doc)
+    assert doc["reach"]["targets"] == doc["reach"]["reached"] > 0 and doc["reach"]["holes"] == {}
+    for r in doc["invariants"]:
+        assert set(r["reach"]["targets"]) <= set(r["reach"]["reached"])
+        for pct in doc["reach"]["pairs"][r["id"]].values():
+            assert 0 < pct <= 100
+    assert "no holes." in render(doc)
+
+
+def test_report_names_a_hole():
+    from convwitness.report.reach import invariant_reach, markdown_lines
+    r = invariant_reach({"targets": ["feature:zero_batch", "dtype:float32"], "scheduled": 1,
+                         "pairs": {"stride×dilation": ["unit×none", "strided×none"]},
+                         "reached": {"dtype:float32": 3, "pair:stride×dilation=unit×none": 3}})
+    assert r["holes"] == ["feature:zero_batch"] and r["pairs"] == {"stride×dilation": 50.0}
+    text = "\n".join(markdown_lines({"reach": {"targets": 2, "reached": 1, "pairs": {},
+                                               "holes": {"forward.contract": r["holes"]}}}))
+    assert "`forward.contract`: feature:zero_batch" in text
+
+
+def test_run_wide_pool_keeps_every_target_and_shares_geometries():
+    from convwitness.run.covering import run_schedules
+    caps = load_adapter("reference").capabilities
+    sched = run_schedules(caps, QUICK, 0)
+    distinct = {s for specs in sched.values() for s in specs}
+    assert len(distinct) < sum(map(len, sched.values()))          # geometries are shared
+    for inv_id, specs in sched.items():
+        inv = get(inv_id)
+        needs = inv.needs_for(caps)
+        wanted = {t for t in targets(caps, needs) if not t.startswith("kind:")}
+        assert wanted <= set().union(*(reach_of(s) for s in specs)), inv_id
+        # a shared geometry still meets this invariant's needs
+        assert all(s.transposed == needs.transposed and s.batch >= needs.batch_min for s in specs)
