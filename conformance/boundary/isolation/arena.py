@@ -61,12 +61,17 @@ class Arena:
         self.map = mmap.mmap(self._fd, new)
 
     def close(self):
+        """Idempotent: a second close must not close a descriptor number the process has
+        since given to someone else (a socket of a Dask worker, say)."""
         try:
             self.map.close()
         except (BufferError, ValueError):
             pass
+        fd, self._fd = self._fd, -1
+        if fd < 0:
+            return
         try:
-            os.close(self._fd)
+            os.close(fd)
         except OSError:
             pass
 
