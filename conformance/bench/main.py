@@ -1,4 +1,4 @@
-"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|all]``).
+"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|all|cluster]``).
 
 They print measured figures side by side from one run on this machine; nothing here
 is a pass/fail test.
@@ -9,6 +9,8 @@ is a pass/fail test.
 * isolation: per-call overhead of the worker process against in-process calls.
 * harness: what the harness adds per example beyond the adapter's and the
   reference's own work, measured with an instant adapter.
+* cluster (not in ``all``): wall time of the standard profile on the reference adapter,
+  locally and on ``--cluster local:2``, and their ratio (bench/cluster.py).
 """
 from __future__ import annotations
 
@@ -202,6 +204,9 @@ def main(argv=None):
         bench_isolation()
     if which in ("harness", "all"):
         bench_harness()
+    if which == "cluster":          # not in "all": it runs a whole certification twice
+        from .cluster import bench_cluster
+        bench_cluster(argv[1:])
 
 
 if __name__ == "__main__":

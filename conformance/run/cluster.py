@@ -81,6 +81,24 @@ def open_cluster(address: str):
     return client, None, text
 
 
+class _Quiet:
+    """Silence the client's own tracebacks while it runs (its reconnect attempts after the
+    scheduler went away); what was lost is said in one line per cause instead."""
+
+    NAMES = ("distributed.client", "distributed.comm", "distributed.core", "distributed.utils")
+
+    def __init__(self):
+        import logging
+        self.saved = {n: logging.getLogger(n).level for n in self.NAMES}
+        for n in self.NAMES:
+            logging.getLogger(n).setLevel(logging.CRITICAL)
+
+    def close(self):
+        import logging
+        for n, level in self.saved.items():
+            logging.getLogger(n).setLevel(level)
+
+
 def _close(client, cluster) -> None:
     """Close a client and the local cluster this run started (None: started elsewhere)."""
     if cluster is None:
@@ -255,6 +273,7 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
             _drop_stale_witnesses(report_dir, order)
             journal = Journal.open(report_dir, adapter, profile, seed, planned=order, shard=shard)
         started, t0 = time.time(), time.perf_counter()
+        quiet = _Quiet()
         done: dict = {}
         status, lost = "complete", []
         with as_interrupt():
@@ -268,7 +287,8 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
                     try:
                         data = fut.result()
                     except Exception as exc:      # the scheduler went away, or workers kept dying
-                        lost.append(f"{inv_id} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})")
+                        why = (str(exc).splitlines() or [""])[0].replace(fut.key, "the task")
+                        lost.append((inv_id, f"{type(exc).__name__}: {why}"))
                         status = "partial"
                         continue
                     res = _settle(data, report_dir) if report_dir else data["result"]
@@ -284,10 +304,12 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
                     progress("interrupted", {"done": len(done), "total": len(order),
                                              "signal": str(exc) if isinstance(exc, Terminated) else "SIGINT"})
             finally:
+                quiet.close()
                 if journal is not None:
                     journal.close()
-        for line in lost if warn else []:
-            warn(f"lost to the cluster, not in the report: {line}")
+        for why in dict.fromkeys(w for _, w in lost) if warn else []:
+            ids = [i for i, w in lost if w == why]
+            warn(f"{len(ids)} invariant(s) lost to the cluster, not in the report ({why}): {', '.join(ids)}; rerun to complete it")
         results = [done[i] for i in order if i in done]
         doc = build_report(adapter, results, profile=profile, seed=seed, started=started,
                            duration_s=time.perf_counter() - t0, shard=shard,
@@ -313,6 +335,10 @@ def run_cli(args, profile, stderr, *, safe):
     if getattr(args, "shard", None):
         from .shard import shard_filter
         extra["work"], extra["shard"] = shard_filter(args.shard), args.shard
+    # the command ends with this run: the client's late tracebacks (its reconnect, cancelled
+    # as the process closes it) stay silenced; the lost invariants are said in one line
+    _distributed()              # imported first: importing it sets its loggers' levels
+    _Quiet()
     client, own, name = open_cluster(args.cluster)
     try:
         ident = _identity(client, _worker_spec(args.adapter), opts, name)
