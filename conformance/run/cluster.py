@@ -41,7 +41,6 @@ __all__ = ["open_cluster", "certify_on_cluster", "ClusterError"]
 
 #: seconds to wait for the first worker of a cluster named by address
 WORKER_WAIT_S = 60.0
-_LOCK = threading.Lock()    # one task at a time per worker process (hypothesis is not thread-safe)
 
 
 class ClusterError(ConvWitnessError):
@@ -111,43 +110,110 @@ def _close(client, cluster) -> None:
 
 
 # -- on the workers ----------------------------------------------------------------------
-def _load(spec: str, opts: dict):
-    from ..boundary.isolation.client import load_isolated
-    return load_isolated(spec, **opts)
+class _Runner:
+    """The one thread of a worker process that loads adapters and runs invariants.
+
+    Dask may run tasks on threads it later retires; the adapter's zygote is killed when
+    the thread that started it ends (PR_SET_PDEATHSIG is per thread), so the adapter is
+    loaded, used and closed on this long-lived thread only. It keeps the adapter of the
+    current run (one load per worker and run, not per task: a load costs a process start
+    and the library's import), and runs one invariant at a time (hypothesis is not
+    thread-safe)."""
+
+    _lock = threading.Lock()
+    _one = None
+
+    def __init__(self):
+        import queue
+        self.jobs: "queue.Queue" = queue.Queue()
+        self.key, self.adapter = None, None
+        threading.Thread(target=self._loop, name="convwitness-cluster-runner", daemon=True).start()
+
+    @classmethod
+    def get(cls) -> "_Runner":
+        with cls._lock:
+            if cls._one is None:
+                cls._one = cls()
+            return cls._one
+
+    def _loop(self):
+        while True:
+            fn, args, box, done = self.jobs.get()
+            try:
+                box["value"] = fn(self, *args)
+            except BaseException as exc:     # handed to the calling task, which raises it
+                box["error"] = exc
+            done.set()
+
+    def call(self, fn, *args):
+        box, done = {}, threading.Event()
+        self.jobs.put((fn, args, box, done))
+        done.wait()
+        if "error" in box:
+            raise box["error"]
+        return box["value"]
+
+    def adapter_for(self, spec: str, opts: dict, run_id: str):
+        """The adapter of run ``run_id`` (loaded on first use; an earlier run's is closed,
+        so no state of one run, such as calls known to hang, leaks into another)."""
+        key = (run_id, spec, repr(sorted(opts.items())))
+        if self.key != key:
+            self.release()
+            from ..boundary.isolation.client import load_isolated
+            self.adapter = load_isolated(spec, **opts)
+            self.key = key
+        return self.adapter
+
+    def release(self, run_id: str | None = None):
+        if self.adapter is not None and (run_id is None or self.key[0] == run_id):
+            close = getattr(self.adapter, "close", None)
+            self.key, self.adapter = None, None
+            if close is not None:
+                close()
 
 
-def _probe(spec: str, opts: dict) -> dict:
+def _probe(spec: str, opts: dict, run_id: str) -> dict:
     """Run on every worker before any task: can it load the adapter, and as what?"""
-    try:
-        adapter = _load(spec, opts)
-    except Exception as exc:    # reported, one line per worker, by the driver
-        return {"error": f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"}
-    try:
+    def probe(runner):
+        adapter = runner.adapter_for(spec, opts, run_id)
         return {"name": adapter.name, "version": adapter.version,
                 "capabilities": adapter.capabilities.to_dict()}
-    finally:
-        close = getattr(adapter, "close", None)
-        if close is not None:
-            close()
+    try:
+        return _Runner.get().call(probe)
+    except Exception as exc:    # reported, one line per worker, by the driver
+        return {"error": f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"}
 
 
-def _task(spec: str, opts: dict, inv_id: str, profile, seed, shrink: bool) -> dict:
+def _release(run_id: str) -> None:
+    """Run on every worker at the end of a run: close the run's adapter."""
+    _Runner.get().call(lambda runner: runner.release(run_id))
+
+
+def _task(spec: str, opts: dict, run_id: str, inv_id: str, profile, seed, shrink: bool) -> dict:
     """One invariant on this worker; the result dict and the files it wrote."""
+    try:    # under the worker's own folder: Dask removes the folders of workers that died
+        from distributed import get_worker
+        where = get_worker().local_directory
+    except (ImportError, ValueError, AttributeError):
+        where = None
+    return _Runner.get().call(_run_one, spec, opts, run_id, inv_id, profile, seed, shrink, where)
+
+
+def _run_one(runner, spec, opts, run_id, inv_id, profile, seed, shrink, where=None) -> dict:
     from ..report.document import result_to_dict
     from .further import search_further
     from .runner import InvariantResult, run_invariant, select
     import warnings
-    with _LOCK, warnings.catch_warnings():
+    with warnings.catch_warnings():
         # the worker's own threads (heartbeats) draw from the global `random` while a
         # strategy runs; hypothesis then warns that the strategy used `random`. Our
         # strategies do not (cases come from hypothesis' own draws and aux_rng), so the
         # warning says nothing about the run here.
         warnings.filterwarnings("ignore", message="Do not use the `random` module inside strategies")
-        tmp = tempfile.mkdtemp(prefix="convwitness-task-")
-        adapter = None
+        tmp = tempfile.mkdtemp(prefix="convwitness-task-", dir=where)
         try:
             try:
-                adapter = _load(spec, opts)
+                adapter = runner.adapter_for(spec, opts, run_id)
                 inv, refusal = next(pair for pair in select(adapter.capabilities, None)
                                     if pair[0].id == inv_id)
                 res = run_invariant(adapter, inv, profile, seed=seed, report_dir=tmp,
@@ -166,35 +232,44 @@ def _task(spec: str, opts: dict, inv_id: str, profile, seed, shrink: bool) -> di
                         files[f"{folder}/{name}"] = fh.read()
             return {"result": result_to_dict(res), "files": files, "tmp": tmp, "cwd": os.getcwd()}
         finally:
-            close = getattr(adapter, "close", None)
-            if close is not None:
-                close()
             shutil.rmtree(tmp, ignore_errors=True)
 
 
 # -- on the driver -----------------------------------------------------------------------
-def _identity(client, spec: str, opts: dict, name: str):
+def _identity(client, spec: str, opts: dict, name: str, run_id: str):
     """The adapter as every worker loads it; a one-line error when one cannot."""
     try:
         client.wait_for_workers(1, timeout=WORKER_WAIT_S)
     except (TimeoutError, OSError):
         raise ClusterError(f"--cluster {name}: no worker joined within {WORKER_WAIT_S:g} s; start workers "
                            f"with `dask worker {name} --nthreads 1`") from None
-    answers = client.run(_probe, spec, opts)
+    answers = client.run(_probe, spec, opts, run_id)
     bad = {w: a["error"] for w, a in answers.items() if "error" in a}
     if bad:
+        _release_all(client, run_id)
         w, why = sorted(bad.items())[0]
         raise AdapterLoadError(f"--adapter {spec!r}: {len(bad)} of {len(answers)} worker(s) of {name} cannot "
                                f"load it (worker {w}: {why}); fix: install the adapter's package on every "
                                "worker or give a path they can all read (docs/cluster.md)")
     idents = {(a["name"], a["version"], repr(sorted(a["capabilities"].items()))) for a in answers.values()}
     if len(idents) > 1:
+        _release_all(client, run_id)
         raise AdapterLoadError(f"--adapter {spec!r}: the workers of {name} load different adapters "
                                f"({sorted((n, v) for n, v, _ in idents)}); fix: install one version everywhere")
     from ..geometry.capabilities import Capabilities
     a = next(iter(answers.values()))
     return SimpleNamespace(name=a["name"], version=a["version"], source=spec,
                            capabilities=Capabilities.from_dict(a["capabilities"])), len(answers)
+
+
+def _release_all(client, run_id: str) -> None:
+    """Close the run's adapter on every worker still there (best effort)."""
+    if getattr(client, "status", "") != "running":
+        return
+    try:
+        client.run(_release, run_id)
+    except Exception:        # a worker or the scheduler already gone: nothing to close there
+        pass
 
 
 def _worker_spec(spec: str) -> str:
@@ -241,7 +316,8 @@ def _view(d: dict) -> SimpleNamespace:
 
 def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="quick", only=None,
                        seed=0, report_dir: str | None = None, progress=None, shrink: bool = True,
-                       work=None, shard: str | None = None, client=None, warn=None, identity=None):
+                       work=None, shard: str | None = None, client=None, warn=None, identity=None,
+                       run_id: str | None = None):
     """Like run.certify.certify, with every invariant a task on ``cluster`` (``local:N`` or a
     scheduler address; or pass a connected ``client``). Returns (report document, results).
     ``warn(line)`` is told of each invariant lost to the cluster (the report is then partial)."""
@@ -258,9 +334,10 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
     else:
         name = cluster
     futures = {}
+    run_id = run_id or os.urandom(8).hex()
     try:
         wspec = _worker_spec(spec)
-        adapter, workers = identity or _identity(client, wspec, load_opts, name)
+        adapter, workers = identity or _identity(client, wspec, load_opts, name, run_id)
         adapter.source = spec
         chosen = select(adapter.capabilities, only)
         if work is not None:
@@ -279,7 +356,7 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
         with as_interrupt():
             try:
                 for inv_id in order:
-                    fut = client.submit(_task, wspec, load_opts, inv_id, profile, seed, shrink,
+                    fut = client.submit(_task, wspec, load_opts, run_id, inv_id, profile, seed, shrink,
                                         pure=False, key=f"convwitness-{inv_id}-{os.urandom(4).hex()}")
                     futures[fut] = inv_id
                 for fut in distributed.as_completed(list(futures)):
@@ -322,6 +399,7 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
         for fut in futures:
             if not fut.done():
                 fut.cancel()
+        _release_all(client, run_id)
         _close(client, own)
 
 
@@ -341,7 +419,8 @@ def run_cli(args, profile, stderr, *, safe):
     _Quiet()
     client, own, name = open_cluster(args.cluster)
     try:
-        ident = _identity(client, _worker_spec(args.adapter), opts, name)
+        run_id = os.urandom(8).hex()
+        ident = _identity(client, _worker_spec(args.adapter), opts, name, run_id)
         adapter = ident[0]
         report_dir = args.report or os.path.join("reports", safe(adapter.name))
         if os.path.exists(report_dir) and not os.path.isdir(report_dir):
@@ -350,7 +429,7 @@ def run_cli(args, profile, stderr, *, safe):
         progress = None if args.quiet else Progress(stderr)
         doc, results = certify_on_cluster(
             args.adapter, name, load_opts=opts, profile=profile, only=args.only, seed=args.seed,
-            report_dir=report_dir, progress=progress, shrink=not args.no_shrink, client=client, identity=ident,
+            report_dir=report_dir, progress=progress, shrink=not args.no_shrink, client=client, identity=ident, run_id=run_id,
             warn=lambda line: print(f"convwitness: {line}", file=stderr), **extra)
     finally:
         _close(client, own)
