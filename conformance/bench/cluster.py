@@ -5,7 +5,8 @@
 Runs ``convwitness run --adapter reference`` (process isolation, seed 0) once locally
 and once with ``--cluster local:N`` (the cluster's start and stop included: what a user
 pays), each into a fresh temporary folder, and prints both wall times, their ratio and
-the machine's load average before each. Figures, never asserted: on a machine shared with
+the machine's load average before each, the invariants that did not pass and whether
+both runs gave the same verdicts. Figures, never asserted: on a machine shared with
 other work the ratio says how much the cluster gained here and now, nothing more.
 """
 from __future__ import annotations
@@ -49,14 +50,27 @@ def bench_cluster(argv=(), out=sys.stdout):
     with tempfile.TemporaryDirectory(prefix="convwitness-bench-cluster-") as tmp:
         for label, extra in (("local", []), (f"--cluster local:{args.workers}", ["--cluster", f"local:{args.workers}"])):
             load = os.getloadavg()[0]
-            wall, rc, err = _timed(base + ["--report", os.path.join(tmp, label.strip("-").replace(":", "_"))] + extra)
-            rows.append((label, wall, rc, load))
+            folder = os.path.join(tmp, label.strip("-").replace(":", "_"))
+            wall, rc, err = _timed(base + ["--report", folder] + extra)
+            verdicts = _verdicts(folder)
+            rows.append((label, wall, rc, load, verdicts))
             print(f"  {label:22s} {wall:8.1f} s wall  (exit {rc}; 1-min load average before: {load:.1f})",
                   file=out)
-            if rc not in (0, 5):
-                print(f"    stderr: {err.strip().splitlines()[-1] if err.strip() else ''}", file=out)
+            failing = sorted(i for i, v in verdicts.items() if v not in ("pass", "not-applicable", "info"))
+            if failing:
+                print(f"    not passing: {', '.join(f'{i} ({verdicts[i]})' for i in failing)}", file=out)
     local, cluster = rows[0][1], rows[1][1]
     print(f"  ratio local / cluster: {local / cluster:.2f} (above 1: the cluster run was faster)", file=out)
+    print(f"  same verdicts: {'yes' if rows[0][4] == rows[1][4] else 'NO'}", file=out)
+
+
+def _verdicts(folder) -> dict:
+    import json
+    try:
+        with open(os.path.join(folder, "report.json"), encoding="utf-8") as fh:
+            return {r["id"]: r["verdict"] for r in json.load(fh)["invariants"]}
+    except (OSError, ValueError, KeyError):
+        return {}
 
 
 if __name__ == "__main__":
