@@ -217,3 +217,11 @@ def test_scheduler_gone_ends_with_partial_report(tmp_path):
     assert done and [r["id"] for r in doc["invariants"]] == [i for i in json.loads(
         journal.read_text().splitlines()[0])["planned"] if i in done]
     assert "lost to the cluster, not in the report" in err and "scheduler" in err
+
+
+@pytest.mark.parametrize("address", ["local:0", "local:two", ""])
+def test_bad_cluster_address_is_a_one_line_usage_error(tmp_path, address):
+    # exit 2 for a usage error (README, "Verdicts and exit codes"); nothing written
+    rc, out, err = cli("run", "--adapter", "reference", "--report", str(tmp_path / "r"), "--cluster", address)
+    assert rc == 2 and err.count("\n") == 1 and "expected local:N" in err, err
+    assert not (tmp_path / "r").exists()

@@ -196,7 +196,7 @@ def cmd_run(args, stdout, stderr) -> int:
     _check_only(args.only)
     if args.report:
         _check_report_dir(args.report)
-    if getattr(args, "cluster", None):
+    if getattr(args, "cluster", None) is not None:
         return _run_on_cluster(args, profile, stdout, stderr)
     adapter = _load(args, profile)
     report_dir = args.report or os.path.join("reports", _safe(adapter.name))
