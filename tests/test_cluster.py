@@ -71,6 +71,7 @@ def test_cluster_run_equals_local_run(tmp_path, adapter, expected_rc):
     validate_report(cluster)
     assert cluster["environment"]["cluster"] == {"address": "local:2", "workers": 2}
     assert "cluster" not in local["environment"]
+    assert "Dask cluster" in (tmp_path / "cluster" / "report.html").read_text(encoding="utf-8")
     assert _comparable(cluster, tmp_path / "cluster") == _comparable(local, tmp_path / "local")
     def listing(folder):
         return sorted(os.listdir(folder)) if folder.is_dir() else []
