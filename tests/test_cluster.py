@@ -226,3 +226,24 @@ def test_bad_cluster_address_is_a_one_line_usage_error(tmp_path, address):
     rc, out, err = cli("run", "--adapter", "reference", "--report", str(tmp_path / "r"), "--cluster", address)
     assert rc == 2 and err.count("\n") == 1 and "expected local:N" in err, err
     assert not (tmp_path / "r").exists()
+
+
+def test_sigterm_on_the_driver_writes_a_partial_report(tmp_path):
+    # as a local run does (run/signals.py; README, exit codes: 6 PARTIAL)
+    rep = tmp_path / "rep"
+    proc = subprocess.Popen([sys.executable, "-m", "convwitness.cli.main", "run", "--adapter", "reference",
+                             "--only", "forward.*", "--report", str(rep), "--quiet", "--cluster", "local:2"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    journal = rep / "journal.jsonl"
+    deadline = time.monotonic() + TIMEOUT
+    while time.monotonic() < deadline and proc.poll() is None:
+        if journal.exists() and len(journal.read_text().splitlines()) >= 2:
+            break
+        time.sleep(0.1)
+    assert proc.poll() is None, proc.communicate()
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=TIMEOUT)
+    assert proc.returncode == 6, err[-2000:]
+    doc = load_report(str(rep / "report.json"))
+    done = {json.loads(x)["result"]["id"] for x in journal.read_text().splitlines()[1:]}
+    assert doc["status"] == "partial" and {r["id"] for r in doc["invariants"]} == done
