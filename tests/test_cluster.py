@@ -247,3 +247,17 @@ def test_sigterm_on_the_driver_writes_a_partial_report(tmp_path):
     doc = load_report(str(rep / "report.json"))
     done = {json.loads(x)["result"]["id"] for x in journal.read_text().splitlines()[1:]}
     assert doc["status"] == "partial" and {r["id"] for r in doc["invariants"]} == done
+
+
+def test_rebuild_of_a_cluster_journal_lists_invariants_in_the_planned_order(tmp_path, client):
+    # the journal gets results in the order they finish; `convwitness rebuild` keeps the plan's order
+    rep = tmp_path / "rep"
+    doc, _ = certify_on_cluster("reference", "local:2", load_opts=LOAD, only=ONLY, report_dir=str(rep),
+                                client=client)
+    (rep / "report.json").unlink()
+    rc, out, err = cli("rebuild", str(rep))
+    assert rc == 0, err
+    head = json.loads((rep / "journal.jsonl").read_text().splitlines()[0])
+    rebuilt = load_report(str(rep / "report.json"))
+    assert [r["id"] for r in rebuilt["invariants"]] == head["planned"] == [r["id"] for r in doc["invariants"]]
+    assert rebuilt["status"] == "complete"
