@@ -1,4 +1,4 @@
-"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|signatures|all]``).
+"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|signatures|all|cluster]``).
 
 They print measured figures side by side from one run on this machine; nothing here
 is a pass/fail test.
@@ -11,6 +11,8 @@ is a pass/fail test.
   reference's own work, measured with an instant adapter.
 * signatures: distinct call signatures of a quick run on the built-in adapters, and the
   wall time of a simulated compile-per-shape port (:mod:`.signatures`).
+* cluster (not in ``all``): wall time of the standard profile on the reference adapter,
+  locally and on ``--cluster local:2``, and their ratio (bench/cluster.py).
 """
 from __future__ import annotations
 
@@ -207,6 +209,9 @@ def main(argv=None):
     if which in ("signatures", "all"):
         from .signatures import bench_signatures
         bench_signatures()
+    if which == "cluster":          # not in "all": it runs a whole certification twice
+        from .cluster import bench_cluster
+        bench_cluster(argv[1:])
 
 
 if __name__ == "__main__":

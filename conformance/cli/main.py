@@ -46,6 +46,9 @@ def _parser() -> argparse.ArgumentParser:
     _isolation_options(r)
     r.add_argument("--invariant-budget", type=float, default=None, metavar="SECONDS",
                    help="wall-time budget of one invariant, shrinking included (default: the profile's)")
+    r.add_argument("--cluster", default=None, metavar="ADDRESS",
+                   help="run each invariant as a task on a Dask cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N for N local worker processes (docs/cluster.md)")
     _extend_run(r)
 
     rp = sub.add_parser("replay", help="re-run one witness without hypothesis")
@@ -196,6 +199,8 @@ def cmd_run(args, stdout, stderr) -> int:
     _check_only(args.only)
     if args.report:
         _check_report_dir(args.report)
+    if getattr(args, "cluster", None) is not None:
+        return _run_on_cluster(args, profile, stdout, stderr)
     adapter = _load(args, profile)
     report_dir = args.report or os.path.join("reports", _safe(adapter.name))
     _check_report_dir(report_dir)
@@ -213,6 +218,16 @@ def cmd_run(args, stdout, stderr) -> int:
         if close is not None:
             close()
     _write_views(doc, report_dir)
+    print(summary_table(doc), file=stdout)
+    print(f"report: {os.path.join(report_dir, 'report.json')}", file=stdout)
+    return _outcome(doc, stderr, len(results))
+
+
+def _run_on_cluster(args, profile, stdout, stderr) -> int:
+    from ..run.cluster import run_cli
+    doc, results, report_dir = run_cli(args, profile, stderr, safe=_safe)
+    _write_views(doc, report_dir)
+    from ..report.console import summary_table
     print(summary_table(doc), file=stdout)
     print(f"report: {os.path.join(report_dir, 'report.json')}", file=stdout)
     return _outcome(doc, stderr, len(results))

@@ -353,6 +353,12 @@ def _overview(doc: dict) -> str:
             + "".join(rows) + f"</tbody></table>{note}</section>")
 
 
+def _cluster(env: dict) -> str:
+    c = env.get("cluster")
+    return (f'; invariants run as tasks on the Dask cluster <span class="mono">{esc(c["address"])}</span> '
+            f'({int(c["workers"])} worker(s) at the start)') if c else ""
+
+
 def _environment(doc: dict) -> str:
     env, caps = doc["environment"], doc["adapter"].get("capabilities") or {}
     libs = "".join(f"<tr><td>{esc(k)}</td><td class='mono'>{esc(v)}</td></tr>"
@@ -360,7 +366,7 @@ def _environment(doc: dict) -> str:
     claims = "".join(f"<tr><td>{esc(k)}</td><td class='mono'>{esc(v)}</td></tr>"
                      for k, v in caps.items() if k not in ("error_models",))
     return (f'<section id="environment"><h2>Environment and claims</h2>'
-            f'<p>Python {esc(env["python"])} on {esc(env["platform"])}</p><div class="grid">'
+            f'<p>Python {esc(env["python"])} on {esc(env["platform"])}{_cluster(env)}</p><div class="grid">'
             f'<div><h4>Libraries</h4><table>{libs}</table></div>'
             f'<div><h4>Capabilities claimed</h4><table>{claims}</table></div></div></section>')
 

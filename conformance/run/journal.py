@@ -97,6 +97,9 @@ def rebuild(report_dir: str) -> dict:
     profile = Profile(**{**head["profile"], "max_spatial": tuple(head["profile"]["max_spatial"])})
     done = {r["id"] for r in results}
     planned = head.get("planned") or []
+    # in the planned order: a cluster run (run/cluster.py) journals results as they finish
+    rank = {inv_id: i for i, inv_id in enumerate(planned)}
+    results.sort(key=lambda r: rank.get(r["id"], len(rank)))
     complete = bool(planned) and set(planned) <= done and not head.get("shard")
     end = os.path.getmtime(os.path.join(report_dir, NAME))
     doc = build_report(adapter, results, profile=profile, seed=head["seed"],

@@ -61,6 +61,8 @@ class Arena:
         self.map = mmap.mmap(self._fd, new)
 
     def close(self):
+        """Idempotent: a second close must not close a descriptor number the process has
+        since given to someone else (a socket of a Dask worker, say)."""
         try:
             self.map.close()
         except (BufferError, ValueError):
