@@ -14,12 +14,13 @@ from ..numerics.bounds import ErrorModel
 from ..errors import SpecError
 from .claims import check_constraints, check_per_pass, constraint_refusal, merge_for_passes
 from .formats import STORAGE_FORMATS
+from .quant import QuantCapabilities
 from .spec import LAYOUTS, ConvSpec
 
 __all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES"]
 
 PADDING_KINDS = ("symmetric", "asymmetric", "negative")
-PASS_NAMES = ("forward", "backward", "transposed")
+PASS_NAMES = ("forward", "backward", "transposed", "quantized")
 
 
 def _frozen(name, value, allowed=None, kind=str):
@@ -70,6 +71,8 @@ class Capabilities:
     per_pass: tuple = ()
     constraints: tuple = ()
     unclaimed_passes: frozenset = frozenset()
+    #: the claims of the quantized pass (geometry/quant.py), None without one
+    quant: QuantCapabilities | None = None
 
     def __post_init__(self):
         set_ = object.__setattr__
@@ -91,6 +94,10 @@ class Capabilities:
         set_(self, "error_models", tuple(em))
         set_(self, "constraints", check_constraints(self.constraints))
         set_(self, "per_pass", check_per_pass(self.per_pass, PASS_NAMES))
+        if isinstance(self.quant, Mapping):
+            set_(self, "quant", QuantCapabilities.from_dict(dict(self.quant)))
+        if self.quant is not None and not isinstance(self.quant, QuantCapabilities):
+            raise SpecError(f"Capabilities: quant={self.quant!r} must be a QuantCapabilities or None")
         if not isinstance(self.error_model, ErrorModel):
             raise SpecError(f"Capabilities: error_model={self.error_model!r} must be an ErrorModel")
         if self.max_elements is not None and (not isinstance(self.max_elements, int) or self.max_elements < 1):
@@ -192,6 +199,8 @@ class Capabilities:
                      for p, claims in v}
             elif f.name == "constraints":
                 v = list(v)
+            elif f.name == "quant":
+                v = None if v is None else v.to_dict()
             d[f.name] = v
         return d
 
