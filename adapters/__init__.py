@@ -19,6 +19,9 @@ BUILTINS: dict[str, str] = {
     "oxtervane-npu": "convwitness.adapters.oxtervane:OxtervaneNPU",
     "winograd-f2": "convwitness.adapters.winograd:WinogradF2",
     "winograd-f4": "convwitness.adapters.winograd:WinogradF4",
+    "quant-numpy": "convwitness.adapters.quant_numpy:QuantNumpy",
+    "quant-numpy-fixed": "convwitness.adapters.quant_numpy:quant_numpy_fixed",
+    "quant-numpy-f32": "convwitness.adapters.quant_numpy:quant_numpy_f32",
 }
 
 __all__ = ["BUILTINS"]

@@ -112,6 +112,9 @@ def load_case(path: str) -> tuple[Case, dict]:
     except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
         raise CaseFileError(f"witness file {npz_path!r} is not a readable .npz ({exc}); it is "
                             "corrupt, regenerate it with `convwitness run`") from None
+    if meta.get("quant"):
+        from .quant import load_qcase     # a quantized case (cases/quant.py)
+        return load_qcase(meta, arrays, npz_path), meta
     dt = numpy_dtype(spec.dtype)
     out = {}
     for name in _ARRAYS:
