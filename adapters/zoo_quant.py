@@ -3,7 +3,8 @@
 Each entry claims what a correct implementation would (the exact model, int32
 accumulator, per-channel weights, every output); ``quantized.*`` invariants must catch
 each one in the quick profile on every seed (tests/test_quantized.py). The defects are
-the ones integer ports ship (issue 14's list; common practice, no source):
+the ones integer ports ship (issue 14's list; common practice, no source), labelled
+Q01..Q06 in the order below (our own labels: BUG-CLASSES.md lists float classes only):
 
 * ``q_raw_zero_padding``: padding filled with a raw 0 instead of the input zero point;
 * ``q_half_up_rounding``: requantization rounds ties up (floor(v + 1/2)) where the model
@@ -39,6 +40,7 @@ class _Bug(QuantNumpy):
 
 class RawZeroPadding(_Bug):
     name = "q_raw_zero_padding"
+    bug_class = "Q01"
 
     def accumulate(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
                    w_scale, w_zero_point):
@@ -49,6 +51,7 @@ class RawZeroPadding(_Bug):
 
 class HalfUpRounding(_Bug):
     name = "q_half_up_rounding"
+    bug_class = "Q02"
 
     def requantize(self, acc, *, x_scale, w_scale, y_scale, y_zero_point, output, clamp):
         ws = per_out(w_scale, acc.shape[1])
@@ -63,6 +66,7 @@ class HalfUpRounding(_Bug):
 
 class WrappingOutput(_Bug):
     name = "q_wrapping_output"
+    bug_class = "Q03"
 
     def requantize(self, acc, *, x_scale, w_scale, y_scale, y_zero_point, output, clamp):
         y = super().requantize(acc, x_scale=x_scale, w_scale=w_scale, y_scale=y_scale,
@@ -75,6 +79,7 @@ class WrappingOutput(_Bug):
 
 class PerInputChannelScales(_Bug):
     name = "q_per_input_channel_scales"
+    bug_class = "Q04"
 
     def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
                   w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
@@ -102,6 +107,7 @@ class PerInputChannelScales(_Bug):
 
 class ZeroPointAfterMultiply(_Bug):
     name = "q_zero_point_after_multiply"
+    bug_class = "Q05"
 
     def accumulate(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
                    w_scale, w_zero_point):
@@ -116,6 +122,7 @@ class ZeroPointAfterMultiply(_Bug):
 
 class Int16Accumulator(_Bug):
     name = "q_int16_accumulator"
+    bug_class = "Q06"
 
     def accumulate(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
                    w_scale, w_zero_point):

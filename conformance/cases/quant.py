@@ -8,7 +8,9 @@ Geometries come from the float path's strategies (every feature and coincidence 
   filled with a raw 0 instead of the input zero point shows);
 * scales: powers of two (then the multiplier is a power of two and ties ``k + 1/2``
   are frequent: the rounding rule shows) or not; multipliers moderate, "half" (M = 2^-j,
-  j = 1..3: every other sum is a tie), tiny (large shifts) or large (outputs saturate);
+  j = 1..3: every other sum is a tie), "near_half" (M = 2^-j (1 + eps) with non-power-of-two
+  scales whose float32 product rounds to make M exactly 2^-j: near-ties), tiny (large
+  shifts) or large (outputs saturate);
 * per-tensor against per-output-channel weight parameters, distinct per channel;
 * values: uniform, at the ends of the range, "saturating" (every product at its
   largest magnitude, one sign: the longest sums and the ends of the output range), and
@@ -36,7 +38,7 @@ __all__ = ["QCase", "QNeeds", "quant_examples", "load_qcase", "QUANT_KINDS"]
 
 QUANT_KINDS = ("uniform", "extreme", "saturating", "near_zero_point")
 ZERO_POINTS = ("any", "ends", "far")
-MULTIPLIERS = ("moderate", "half", "tiny", "large")
+MULTIPLIERS = ("moderate", "half", "near_half", "tiny", "large")
 
 
 @dataclass(frozen=True)
@@ -156,7 +158,8 @@ def _qspec(draw, caps: Capabilities, profile, qn: QNeeds):
     assume(qn.per_channel is not True or per_channel)
     mult = draw(st.sampled_from(qn.multipliers), label="multiplier") if output != "int32" else "moderate"
     # "half": M = 2^-j with j in 1..3, power-of-two scales: ties k + 1/2 are frequent
-    pow2 = mult == "half" or (qn.pow2_share and draw(st.booleans(), label="power_of_two_scales"))
+    pow2 = mult == "half" or (mult != "near_half" and qn.pow2_share
+                              and draw(st.booleans(), label="power_of_two_scales"))
     n_w = conv.out_channels if per_channel else 1
     if qc.weight_zero_points:
         w_zp = tuple(_zero_point(draw, "int8", "any" if zp_mode == "far" else zp_mode, f"w_zero_point{i}")
@@ -179,7 +182,7 @@ def _qspec(draw, caps: Capabilities, profile, qn: QNeeds):
         xlo, xhi = INT_RANGES[x_dtype]
         n = max(1, (conv.in_channels // conv.groups) * math.prod(conv.kernel_size))
         typical = max(1.0, math.sqrt(n) * (xhi - xlo) * 255 / 8)
-        if mult == "half":
+        if mult in ("half", "near_half"):
             target = 2.0 ** -draw(st.integers(1, 3), label="m_exp")
         else:
             j = {"moderate": draw(st.integers(-2, 3), label="m_exp"),
@@ -187,6 +190,9 @@ def _qspec(draw, caps: Capabilities, profile, qn: QNeeds):
                  "large": draw(st.integers(4, 10), label="m_exp")}[mult]
             target = 2.0 ** j * 64.0 / typical
         raw = x_scale * w_scale[0] / target
+        # near_half: y_scale = fl32(x_scale*w_scale)/target, so the exact multiplier is
+        # 2^-j (1 + eps), |eps| <= 2^-24, while one computed in float32 is 2^-j exactly:
+        # exact ties of the float32 model are near-ties of the exact one
         y_scale = 2.0 ** round(math.log2(raw)) if pow2 else float(np.float32(raw))
         y_zp = _zero_point(draw, output, zp_mode, "y_zero_point")
         if qc.clamp and qn.clamp is not False and draw(st.booleans(), label="clamp"):

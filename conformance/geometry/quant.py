@@ -152,10 +152,10 @@ class QuantSpec:
         return self.clamp if self.clamp is not None else INT_RANGES[self.output]
 
     def describe(self) -> str:
-        q = (f"x {self.x_dtype} s={self.x_scale:.6g} zp={self.x_zero_point}, w {self.w_dtype} "
+        q = (f"x {self.x_dtype} s={self.x_scale:.9g} zp={self.x_zero_point}, w {self.w_dtype} "
              f"{'per-channel' if self.per_channel else 'per-tensor'}, bias {self.bias}, out {self.output}")
         if self.requantized:
-            q += f" s={self.y_scale:.6g} zp={self.y_zero_point}"
+            q += f" s={self.y_scale:.9g} zp={self.y_zero_point}"
             if self.clamp is not None:
                 q += f" clamp={list(self.clamp)}"
         return f"{self.conv.describe()}; {q}"
@@ -206,7 +206,8 @@ class QuantCapabilities:
     ``float32``: the multiplier and product in float32). ``max_sum`` is the largest
     |accumulator| it holds exactly (2^31 - 1 for an int32 accumulator): geometries whose
     worst sum exceeds it are refused. ``weight_zero_points`` False claims only
-    symmetric weights (every w_zero_point 0).
+    symmetric weights (every w_zero_point 0). ``output_like_input`` claims requantized
+    outputs only in the activations' own format.
     """
 
     x_dtypes: frozenset = frozenset(X_DTYPES)
@@ -217,6 +218,8 @@ class QuantCapabilities:
     clamp: bool = True
     model: str = "exact"
     max_sum: int = 2 ** 31 - 1
+    #: a requantized output has the activations' format (uint8 -> uint8, int8 -> int8)
+    output_like_input: bool = False
 
     def __post_init__(self):
         s = object.__setattr__
@@ -239,6 +242,8 @@ class QuantCapabilities:
             return f"x_dtype={spec.x_dtype} not in x_dtypes={sorted(self.x_dtypes)}"
         if spec.output not in self.outputs:
             return f"output={spec.output} not in outputs={sorted(self.outputs)}"
+        if self.output_like_input and spec.requantized and spec.output != spec.x_dtype:
+            return f"output={spec.output} differs from x_dtype={spec.x_dtype} but output_like_input=True"
         if spec.bias not in self.bias:
             return f"bias={spec.bias} not in bias={sorted(self.bias)}"
         if spec.per_channel and not self.per_channel:
