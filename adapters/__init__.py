@@ -22,6 +22,7 @@ BUILTINS: dict[str, str] = {
     "quant-numpy": "convwitness.adapters.quant_numpy:QuantNumpy",
     "quant-numpy-fixed": "convwitness.adapters.quant_numpy:quant_numpy_fixed",
     "quant-numpy-f32": "convwitness.adapters.quant_numpy:quant_numpy_f32",
+    "torch-quant": "convwitness.adapters.torch_quant:TorchQuant",
     "onnxruntime-quant": "convwitness.adapters.onnxruntime_quant:QuantOnnxRuntime",
     "onnxruntime-convinteger": "convwitness.adapters.onnxruntime_quant:conv_integer",
     "onnxruntime-qlinearconv": "convwitness.adapters.onnxruntime_quant:qlinear_conv",

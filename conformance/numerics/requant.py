@@ -142,6 +142,11 @@ def deviation(spec: QuantSpec, acc: np.ndarray, model: str) -> tuple[np.ndarray,
                "+ |y_zp|); allowed floor(1 + E) units (1 for the final rounding's tie rule)")
     else:
         raise SpecError(f"requant: model={model!r}; expected exact, fixed_point or float32")
+    if spec.bias == "float":
+        # an inexact model may add a float bias in real terms instead of rounding it to the
+        # accumulator scale first: the two differ by at most half a step of that scale
+        e = e + 0.5 * m
+        why += "; + M/2 (a float bias added unrounded)"
     return np.floor(1.0 + e), why
 
 
