@@ -22,6 +22,8 @@ BUILTINS: dict[str, str] = {
     "quant-numpy": "convwitness.adapters.quant_numpy:QuantNumpy",
     "quant-numpy-fixed": "convwitness.adapters.quant_numpy:quant_numpy_fixed",
     "quant-numpy-f32": "convwitness.adapters.quant_numpy:quant_numpy_f32",
+    "oxtervane-int8": "convwitness.adapters.oxtervane_int8:OxtervaneInt8",
+    "oxtervane-int8-padbug": "convwitness.adapters.oxtervane_int8:OxtervaneInt8PadBug",
     "torch-quant": "convwitness.adapters.torch_quant:TorchQuant",
     "onnxruntime-quant": "convwitness.adapters.onnxruntime_quant:QuantOnnxRuntime",
     "onnxruntime-convinteger": "convwitness.adapters.onnxruntime_quant:conv_integer",
