@@ -225,7 +225,8 @@ class Capabilities:
                 f"{','.join(sorted(self.dtypes, key=STORAGE_FORMATS.index))} "
                 f"{'/'.join(sorted(self.layouts))} pad={'+'.join(k for k in PADDING_KINDS if k in self.padding)} "
                 f"{'+'.join(flags)} passes={','.join(p for p in PASS_NAMES if p in self.claimed_passes)}"
-                + (" (inferred)" if self.passes is None else ""))
+                + (" (inferred)" if self.passes is None else "")
+                + (f"; {self.quant.summary()}" if self.quant is not None else ""))
 
 
 _MODEL_PASSES = ("forward", "transposed", "grad_input", "grad_weight", "grad_bias")
