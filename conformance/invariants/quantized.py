@@ -114,7 +114,8 @@ def saturation(adapter, case, ctx):
 
 @invariant("quantized.requantization", passes=PASSES, requires=_needs_quant({"int8", "uint8"}),
            cases=_cases(lambda caps: QNeeds(outputs=("int8", "uint8"),
-                                            multipliers=("half", "near_half", "moderate", "tiny"),
+                                            multipliers=("half", "half", "near_half", "moderate", "tiny"),
+                                            zero_points=("any", "far"), clamp=False,
                                             kinds=("near_zero_point",))),
            steer=True,
            statement="requantized outputs within the declared model's derived deviation of exact rounding")
