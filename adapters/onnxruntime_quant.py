@@ -19,8 +19,10 @@ bias (QLinearConv takes an int32 B). The declared requantization model is ``floa
 onnxruntime's CPU kernel multiplies the int32 accumulator by a float32 output scale
 (x_scale*w_scale/y_scale) -- recalled from memory of its MLAS requantization, and what
 the suite measures (``quantized.requantization``); an exact-model claim would be
-``QuantOnnxRuntime(model="exact")``. Weight zero points: whatever the suite finds
-(``scripts/probe_ort_quant.py`` prints it).
+``onnxruntime-qlinearconv-exact``, which the suite finds NOT CONFORMANT on a near-tie.
+``onnxruntime-quant`` (both ops, per-channel claimed for both as ONNX allows) is NOT
+CONFORMANT: ConvInteger refuses a per-channel weight zero point; ``onnxruntime-convinteger``
+claims per-tensor only. ``python3 scripts/probe_quant.py`` reproduces both findings.
 
 Environment where the figures of docs/quantized.md were seen: onnxruntime 1.32.0,
 onnx 1.23.2, numpy 2.4.6, Python 3.11, x86-64 CPU; reproduce with

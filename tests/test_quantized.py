@@ -274,3 +274,11 @@ def test_torch_quantized_conv_certified_under_the_float32_model():
     from convwitness.adapters.torch_quant import TorchQuant
     assert not _flagged(TorchQuant(), 0)
     assert "quantized.requantization" in _flagged(TorchQuant(model="exact"), 0)
+
+
+def test_demo_int8_port_and_its_planted_sibling():
+    # the invented Oxtervane OXT-16 int8 port (fixed-point model) is conformant; its
+    # sibling pads with a raw 0 and is caught where padding meets a nonzero zero point
+    from convwitness.adapters.oxtervane_int8 import OxtervaneInt8, OxtervaneInt8PadBug
+    assert not _flagged(OxtervaneInt8(), 0)
+    assert "quantized.padding_zero" in _flagged(OxtervaneInt8PadBug(), 0)
