@@ -282,3 +282,20 @@ def test_demo_int8_port_and_its_planted_sibling():
     from convwitness.adapters.oxtervane_int8 import OxtervaneInt8, OxtervaneInt8PadBug
     assert not _flagged(OxtervaneInt8(), 0)
     assert "quantized.padding_zero" in _flagged(OxtervaneInt8PadBug(), 0)
+
+
+@pytest.mark.parametrize("name,module,hint", [
+    ("onnxruntime-qlinearconv", "onnxruntime", "pip install 'convwitness[onnx]'"),
+    ("torch-quant", "torch", "pip install 'convwitness[torch]'"),
+])
+def test_missing_library_makes_the_quantized_adapter_unavailable(name, module, hint):
+    # one line, what is missing and how to fix it (the house rule for user-facing errors)
+    import subprocess
+    import sys
+    code = (f"import sys; sys.modules[{module!r}] = None\n"
+            "import convwitness\n"
+            f"try:\n    convwitness.load_adapter({name!r})\n"
+            "except convwitness.AdapterUnavailable as exc:\n    print('UNAVAILABLE:', exc)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    line = out.stdout.strip()
+    assert line.startswith("UNAVAILABLE:") and hint in line and "\n" not in line, (line, out.stderr)
