@@ -158,7 +158,10 @@ class QuantSpec:
             q += f" s={self.y_scale:.9g} zp={self.y_zero_point}"
             if self.clamp is not None:
                 q += f" clamp={list(self.clamp)}"
-        return f"{self.conv.describe()}; {q}"
+        geometry = self.conv.describe()
+        if geometry.endswith(f" {self.conv.dtype}"):       # the geometry's dtype is not used
+            geometry = geometry[: -len(self.conv.dtype) - 1]
+        return f"{geometry}; {q}"
 
     def to_dict(self) -> dict:
         d = {f.name: getattr(self, f.name) for f in fields(self)}
