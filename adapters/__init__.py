@@ -21,6 +21,16 @@ BUILTINS: dict[str, str] = {
     "oxtervane-npu": "convwitness.adapters.oxtervane:OxtervaneNPU",
     "winograd-f2": "convwitness.adapters.winograd:WinogradF2",
     "winograd-f4": "convwitness.adapters.winograd:WinogradF4",
+    "quant-numpy": "convwitness.adapters.quant_numpy:QuantNumpy",
+    "quant-numpy-fixed": "convwitness.adapters.quant_numpy:quant_numpy_fixed",
+    "quant-numpy-f32": "convwitness.adapters.quant_numpy:quant_numpy_f32",
+    "oxtervane-int8": "convwitness.adapters.oxtervane_int8:OxtervaneInt8",
+    "oxtervane-int8-padbug": "convwitness.adapters.oxtervane_int8:OxtervaneInt8PadBug",
+    "torch-quant": "convwitness.adapters.torch_quant:TorchQuant",
+    "onnxruntime-quant": "convwitness.adapters.onnxruntime_quant:QuantOnnxRuntime",
+    "onnxruntime-convinteger": "convwitness.adapters.onnxruntime_quant:conv_integer",
+    "onnxruntime-qlinearconv": "convwitness.adapters.onnxruntime_quant:qlinear_conv",
+    "onnxruntime-qlinearconv-exact": "convwitness.adapters.onnxruntime_quant:qlinear_conv_exact",
 }
 
 __all__ = ["BUILTINS"]

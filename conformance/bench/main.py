@@ -1,4 +1,4 @@
-"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|signatures|all|cluster]``).
+"""Benchmarks (``python -m convwitness.bench [reference|isolation|harness|signatures|quantized|all|cluster]``).
 
 They print measured figures side by side from one run on this machine; nothing here
 is a pass/fail test.
@@ -13,6 +13,8 @@ is a pass/fail test.
   wall time of a simulated compile-per-shape port (:mod:`.signatures`).
 * cluster (not in ``all``): wall time of the standard profile on the reference adapter,
   locally and on ``--cluster local:2``, and their ratio (bench/cluster.py).
+* quantized: wall time of the quick profile's quantized.* invariants on onnxruntime's
+  ConvInteger and QLinearConv, torch's quantized conv and the numpy control.
 """
 from __future__ import annotations
 
@@ -197,9 +199,36 @@ def bench_harness(out=sys.stdout):
             setattr(refmod, n, fn)
 
 
+def bench_quantized(out=sys.stdout):
+    """Wall time of the quick profile's quantized.* invariants on onnxruntime's kernels
+    (as ``convwitness run`` does it: process isolation, seed 0), goal <= 60 s each."""
+    from ..boundary.isolation.client import load_isolated
+    from ..errors import AdapterLoadError
+    from ..run.certify import certify
+    print("quantized: quick profile, quantized.* only, process isolation, seed 0", file=out)
+    for name in ("onnxruntime-convinteger", "onnxruntime-qlinearconv", "torch-quant", "quant-numpy"):
+        try:
+            adapter = load_isolated(name)
+        except AdapterLoadError as exc:
+            print(f"  {name:26s} unavailable: {exc}", file=out)
+            continue
+        try:
+            t = time.perf_counter()
+            doc, res = certify(adapter, profile="quick", seed=0, report_dir=None, only="quantized.*")
+            wall = time.perf_counter() - t
+        finally:
+            adapter.close()
+        ran = [r for r in res if r.verdict != "not-applicable"]
+        ex = sum(r.examples for r in ran)
+        print(f"  {name:26s} {wall:6.1f} s wall  {len(ran)} invariants  {ex} examples  "
+              f"verdict {(doc.get('verdict') or {}).get('headline', '?')}  (goal <= 60 s)", file=out)
+
+
 def main(argv=None):
     argv = sys.argv[1:] if argv is None else argv
     which = argv[0] if argv else "all"
+    if which in ("quantized", "all"):
+        bench_quantized()
     if which in ("reference", "all"):
         bench_reference()
     if which in ("isolation", "all"):

@@ -26,7 +26,7 @@ from ..errors import (AdapterCrashed, AdapterLoadError, AdapterOutputError, Adap
 from ..geometry.formats import numpy_dtype
 from ..geometry.spec import ConvSpec
 
-__all__ = ["Adapter", "wrap", "call_kwargs"]
+__all__ = ["Adapter", "wrap", "call_kwargs", "quant_kwargs"]
 
 
 def call_kwargs(spec: ConvSpec, transposed: bool = False) -> dict:
@@ -37,6 +37,17 @@ def call_kwargs(spec: ConvSpec, transposed: bool = False) -> dict:
         kw["layout"] = spec.layout
     if transposed:
         kw["output_padding"] = spec.output_padding
+    return kw
+
+
+def quant_kwargs(spec) -> dict:
+    """The keyword arguments of ``quantized(x, w, b, ...)`` for a QuantSpec: the geometry's,
+    then the quantization parameters (w_scale and w_zero_point as tuples of 1 or C_out
+    entries; y_scale None and clamp None for int32 output; the bias kind is b's dtype)."""
+    kw = call_kwargs(spec.conv)
+    kw.update(x_scale=spec.x_scale, x_zero_point=spec.x_zero_point, w_scale=tuple(spec.w_scale),
+              w_zero_point=tuple(spec.w_zero_point), y_scale=spec.y_scale,
+              y_zero_point=spec.y_zero_point, output=spec.output, clamp=spec.clamp)
     return kw
 
 
@@ -64,12 +75,19 @@ class Adapter:
         self.target = target
         self.source = source
         fwd = getattr(target, "forward", None)
+        qnt = getattr(target, "quantized", None)
+        # the quantized pass (geometry/quant.py): quantized(x, w, b, *, stride, padding,
+        # dilation, groups, x_scale, x_zero_point, w_scale, w_zero_point, y_scale,
+        # y_zero_point, output, clamp) -> y; an object may offer it alone
+        self._quantized = qnt if callable(qnt) and not _is_plain_function(target) else None
         if callable(fwd) and not _is_plain_function(target):
             self._forward = fwd
             self._backward = getattr(target, "backward", None)
             self._transposed = getattr(target, "transposed", None)
         elif callable(target):
             self._forward, self._backward, self._transposed = target, None, None
+        elif self._quantized is not None:
+            self._forward, self._backward, self._transposed = None, None, None
         else:
             raise AdapterLoadError(
                 f"adapter {source or target!r}: expected a forward function or an object with "
@@ -81,7 +99,9 @@ class Adapter:
         self.name = str(name or getattr(target, "name", None)
                         or getattr(target, "__name__", None) or type(target).__name__)
         self.version = str(getattr(target, "version", "") or "")
-        offered = {"forward"}
+        offered = {"forward"} if self._forward is not None else set()
+        if self._quantized is not None:
+            offered.add("quantized")
         if self._backward is not None:
             offered.add("backward")
         if self._transposed is not None:
@@ -151,6 +171,21 @@ class Adapter:
                                      "asked for a transposed convolution")
         y = self._call("transposed", self._transposed, x, w, b, **call_kwargs(spec, transposed=True))
         return check_array(self.name, "transposed", "y", y, spec.y_shape, spec.dtype)
+
+    def quantized(self, spec, x, w, b=None) -> np.ndarray:
+        """y of a quantized convolution (``spec`` a QuantSpec), checked against the contract:
+        an array of the output shape and integer format (``spec.output``)."""
+        if self._quantized is None:
+            raise AdapterOutputError(f"adapter {self.name} offers no quantized(); it cannot be "
+                                     "asked for a quantized convolution")
+        y = self._call("quantized", self._quantized, x, w, b, **quant_kwargs(spec))
+        expected = f"numpy.ndarray shape={tuple(spec.y_shape)} dtype={spec.output}"
+        if not isinstance(y, np.ndarray) or y.shape != tuple(spec.y_shape) or y.dtype != np.dtype(spec.output):
+            got = _describe(y)
+            raise AdapterOutputError(
+                f"adapter {self.name} quantized: y expected {expected}, got {got}; fix: return the "
+                f"output format asked for (output={spec.output!r}) in the shape of the geometry")
+        return y
 
     def _call(self, method: str, fn, *args, **kwargs):
         """Call the implementation; its own exceptions become AdapterRaised with the traceback."""

@@ -139,7 +139,8 @@ def _instantiate(obj, text: str):
         except Exception as exc:
             raise AdapterLoadError(f"adapter {text!r}: {obj.__name__}() raised "
                                    f"{type(exc).__name__}: {exc}") from None
-    if hasattr(obj, "forward") and callable(obj.forward):
+    if (hasattr(obj, "forward") and callable(obj.forward)) or \
+            (hasattr(obj, "quantized") and callable(obj.quantized)):   # a quantized-only adapter
         return obj
     if not callable(obj):
         raise AdapterLoadError(f"adapter {text!r}: {type(obj).__name__} object is neither an adapter "
@@ -161,7 +162,7 @@ def _instantiate(obj, text: str):
         except Exception as exc:
             raise AdapterLoadError(f"adapter {text!r}: factory {getattr(obj, '__name__', obj)}() "
                                    f"raised {type(exc).__name__}: {exc}") from None
-        if hasattr(made, "forward") or callable(made):
+        if hasattr(made, "forward") or hasattr(made, "quantized") or callable(made):
             return made
         raise AdapterLoadError(f"adapter {text!r}: factory returned {type(made).__name__}, expected "
                                f"an adapter object or a function {_SIGNATURE}")

@@ -16,9 +16,10 @@ import numpy as np
 
 from ..errors import CaseFileError, SpecError
 from ..geometry.formats import FORMATS, numpy_dtype
+from ..geometry.quant import QuantSpec
 from ..geometry.spec import ConvSpec
 
-__all__ = ["Case", "CASE_FORMAT", "load_case"]
+__all__ = ["Case", "QCase", "CASE_FORMAT", "load_case", "load_qcase"]
 
 CASE_FORMAT = "convwitness-case/1"
 _ARRAYS = ("x", "w", "b", "grad_y")
@@ -112,6 +113,8 @@ def load_case(path: str) -> tuple[Case, dict]:
     except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
         raise CaseFileError(f"witness file {npz_path!r} is not a readable .npz ({exc}); it is "
                             "corrupt, regenerate it with `convwitness run`") from None
+    if meta.get("quant"):
+        return load_qcase(meta, arrays, npz_path), meta     # a quantized case
     dt = numpy_dtype(spec.dtype)
     out = {}
     for name in _ARRAYS:
@@ -131,3 +134,58 @@ def load_case(path: str) -> tuple[Case, dict]:
     except SpecError as exc:
         raise CaseFileError(f"witness {npz_path!r} does not match its spec: {exc}") from None
     return case, meta
+
+
+@dataclass(frozen=True)
+class QCase:
+    """A QuantSpec plus arrays x (int8/uint8), w (int8), b (int32 or float32, or None)."""
+
+    spec: QuantSpec
+    x: np.ndarray = field(repr=False)
+    w: np.ndarray = field(repr=False)
+    b: np.ndarray | None = field(repr=False, default=None)
+    kind: str = "uniform"
+    seed: int = 0
+    note: str = ""
+    grad_y = None
+
+    def __post_init__(self):
+        s = self.spec
+        bdt = {"int32": "int32", "float": "float32"}.get(s.bias)
+        for name, shape, dt in (("x", s.x_shape, s.x_dtype), ("w", s.w_shape, s.w_dtype),
+                                ("b", (s.out_channels,), bdt)):
+            a = getattr(self, name)
+            if a is None and dt is None:
+                continue
+            if not isinstance(a, np.ndarray) or a.shape != tuple(shape) or a.dtype != np.dtype(dt):
+                got = f"shape={getattr(a, 'shape', None)} dtype={getattr(a, 'dtype', type(a).__name__)}"
+                raise SpecError(f"QCase: {name} expected shape={tuple(shape)} dtype={dt}, got {got}")
+
+    def arrays(self) -> dict:
+        return {n: getattr(self, n) for n in ("x", "w", "b") if getattr(self, n) is not None}
+
+    def save(self, base: str, **extra) -> tuple[str, str]:
+        """Write ``base.npz`` and ``base.json`` (the case format, with a ``quant`` field)."""
+        os.makedirs(os.path.dirname(os.path.abspath(base)), exist_ok=True)
+        npz, meta = base + ".npz", base + ".json"
+        with open(npz + ".tmp", "wb") as fh:
+            np.savez(fh, **self.arrays())
+        os.replace(npz + ".tmp", npz)
+        doc = {"format": CASE_FORMAT, "spec": self.spec.conv.to_dict(), "quant": self.spec.to_dict(),
+               "kind": self.kind, "seed": self.seed, "note": self.note, "arrays": sorted(self.arrays())}
+        doc.update(extra)
+        with open(meta + ".tmp", "w", encoding="utf-8") as fh:
+            json.dump(doc, fh, indent=2, sort_keys=True)
+        os.replace(meta + ".tmp", meta)
+        return npz, meta
+
+
+def load_qcase(meta: dict, arrays: dict, where: str) -> QCase:
+    """The QCase of a witness (``meta`` its JSON, ``arrays`` its .npz contents)."""
+    try:
+        spec = QuantSpec.from_dict(meta["quant"])
+        return QCase(spec, arrays["x"], arrays["w"], arrays.get("b"), meta.get("kind", "uniform"),
+                     int(meta.get("seed", 0)), meta.get("note", ""))
+    except (KeyError, SpecError, TypeError) as exc:
+        raise CaseFileError(f"witness {where!r}: its quantized case is invalid ({exc}); "
+                            "regenerate it with `convwitness run`") from None

@@ -53,6 +53,7 @@ SALTS = {
     "upstream_scale": 72,      # backward.upstream_linearity: the power of two 2^k
     "fd_input": 81,            # backward.finite_differences: direction in x
     "fd_weight": 82,           # backward.finite_differences: direction in w
+    "quant_values": 91,        # cases/quant.py: the integer x, w, b of a quantized case
 }
 
 

@@ -14,16 +14,18 @@ from ..numerics.bounds import ErrorModel
 from ..errors import SpecError
 from .claims import check_constraints, check_per_pass, constraint_refusal, merge_for_passes
 from .formats import STORAGE_FORMATS
+from .quant import QuantCapabilities
 from .spec import LAYOUTS, ConvSpec
 
 __all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES", "GRADIENTS", "MODEL_KEYS"]
 
 PADDING_KINDS = ("symmetric", "asymmetric", "negative")
-PASS_NAMES = ("forward", "backward", "transposed")
+PASS_NAMES = ("forward", "backward", "transposed", "quantized")
 #: the outputs of the backward pass; an error model keyed "dtype/backward" covers all three
 GRADIENTS = ("grad_input", "grad_weight", "grad_bias")
-#: what may follow "dtype/" in an error_models key
-MODEL_KEYS = PASS_NAMES + GRADIENTS
+#: what may follow "dtype/" in an error_models key (the quantized pass has its own
+#: requantization models: geometry/quant.py)
+MODEL_KEYS = ("forward", "backward", "transposed") + GRADIENTS
 
 
 def _frozen(name, value, allowed=None, kind=str):
@@ -78,6 +80,8 @@ class Capabilities:
     per_pass: tuple = ()
     constraints: tuple = ()
     unclaimed_passes: frozenset = frozenset()
+    #: the claims of the quantized pass (geometry/quant.py), None without one
+    quant: QuantCapabilities | None = None
 
     def __post_init__(self):
         set_ = object.__setattr__
@@ -99,6 +103,10 @@ class Capabilities:
         set_(self, "error_models", tuple(em))
         set_(self, "constraints", check_constraints(self.constraints))
         set_(self, "per_pass", check_per_pass(self.per_pass, PASS_NAMES))
+        if isinstance(self.quant, Mapping):
+            set_(self, "quant", QuantCapabilities.from_dict(dict(self.quant)))
+        if self.quant is not None and not isinstance(self.quant, QuantCapabilities):
+            raise SpecError(f"Capabilities: quant={self.quant!r} must be a QuantCapabilities or None")
         if not isinstance(self.error_model, ErrorModel):
             raise SpecError(f"Capabilities: error_model={self.error_model!r} must be an ErrorModel")
         if self.max_elements is not None and (not isinstance(self.max_elements, int) or self.max_elements < 1):
@@ -203,6 +211,8 @@ class Capabilities:
                      for p, claims in v}
             elif f.name == "constraints":
                 v = list(v)
+            elif f.name == "quant":
+                v = None if v is None else v.to_dict()
             d[f.name] = v
         return d
 
@@ -227,7 +237,8 @@ class Capabilities:
                 f"{','.join(sorted(self.dtypes, key=STORAGE_FORMATS.index))} "
                 f"{'/'.join(sorted(self.layouts))} pad={'+'.join(k for k in PADDING_KINDS if k in self.padding)} "
                 f"{'+'.join(flags)} passes={','.join(p for p in PASS_NAMES if p in self.claimed_passes)}"
-                + (" (inferred)" if self.passes is None else ""))
+                + (" (inferred)" if self.passes is None else "")
+                + (f"; {self.quant.summary()}" if self.quant is not None else ""))
 
 
 _MODEL_PASSES = MODEL_KEYS

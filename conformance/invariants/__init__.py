@@ -31,6 +31,7 @@ SURFACES = {
     "call": "the call itself: inputs left untouched, strided views",
     "precision": "the precision the error model declares",
     "long_sum": "long accumulations",
+    "quantized": "the quantized integer convolution: accumulation, zero points, requantization",
 }
 
 

@@ -99,7 +99,7 @@ def scope_of(doc: dict) -> dict:
                 ndims.add(int(value))
             elif feat == "layout":
                 layouts.add(value)
-    order = ("forward", "backward", "transposed")
+    order = ("forward", "backward", "transposed", "quantized")
     return {"passes": sorted(passes, key=lambda p: order.index(p) if p in order else 9),
             "dtypes": sorted(dtypes), "ndims": sorted(ndims), "layouts": sorted(layouts),
             "profile": (doc.get("profile") or {}).get("name", "?"), "seed": doc.get("seed")}

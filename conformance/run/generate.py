@@ -64,7 +64,9 @@ class Suite:
         return get(inv_id)
 
     def examples(self, inv_id: str):
-        """The strategy ``run`` draws from for this invariant (tuples of Cases, one geometry)."""
+        """The strategy ``run`` draws from for this invariant (tuples of Cases, one geometry):
+        ``Invariant.strategy``, as the runner calls it (an invariant with its own ``cases``,
+        such as long_sum.* and quantized.*, draws from those)."""
         return self.invariant(inv_id).strategy(self.adapter.capabilities, self.profile)
 
     def settings(self, test):

@@ -50,8 +50,13 @@ class ZooOutcome:
 
 def _entries(only: str | None):
     from ..adapters.zoo import CORRECT, ZOO, bug_class_of
+    from ..adapters.zoo_quant import QUANT_CORRECT, QUANT_ZOO
     rows = [(name, cls, True) for name, cls in CORRECT.items()]
     rows += [(name, cls, False) for name, cls in ZOO.items()]
+    # the quantized zoo and its controls (adapters/zoo_quant.py, bug classes Q01..)
+    rows += [(name, cls, True) for name, cls in QUANT_CORRECT.items()]
+    rows += [(name, cls, False) for name, cls in QUANT_ZOO.items()]
+    quant_class = {name: getattr(cls, "bug_class", "") for name, cls in QUANT_ZOO.items()}
     if only:
         wanted = [w.strip() for w in only.split(",") if w.strip()]
         known = {name for name, _, _ in rows}
@@ -62,7 +67,8 @@ def _entries(only: str | None):
                 f"selftest --only={','.join(unknown)}: no such zoo entry; expected names from "
                 f"{', '.join(sorted(known))}")
         rows = [r for r in rows if r[0] in wanted]
-    return [(name, cls, control, bug_class_of(name)) for name, cls, control in rows]
+    return [(name, cls, control, quant_class.get(name) or bug_class_of(name))
+            for name, cls, control in rows]
 
 
 def run_zoo(profile="quick", seed: int | None = 0, only: str | None = None,

@@ -199,7 +199,11 @@ class ProcessAdapter:
         self.version = hello["version"]
         self.capabilities = Capabilities.from_dict(hello["capabilities"])
         passes = self.capabilities.passes
-        self.forward = self._proxy("forward")
+        caps = self.capabilities
+        if "forward" in passes or "forward" in caps.unclaimed_passes or "quantized" not in passes:
+            self.forward = self._proxy("forward")
+        if "quantized" in passes:
+            self.quantized = self._proxy("quantized")
         if "backward" in passes:
             self.backward = self._proxy("backward")
         if "transposed" in passes:

@@ -34,7 +34,7 @@ def serve(conn, adapter, memory_limit: int = 0):
     arenas = {}
     reply = Arena.create(prefix="reply")
     methods = {"forward": adapter._forward, "backward": adapter._backward,
-               "transposed": adapter._transposed}
+               "transposed": adapter._transposed, "quantized": adapter._quantized}
     last_outputs: list = []
     try:
         while True:

@@ -1,0 +1,74 @@
+"""torch's quantized convolution (CPU, ``torch.ao.nn.quantized.functional.conv{1,2,3}d``).
+
+The integer arrays become quantized tensors as they are (``_make_per_tensor_quantized_tensor``
+/ ``_make_per_channel_quantized_tensor`` on the int8/uint8 values; per-channel along
+axis 0 = output channels), and the output's integer representation (``int_repr()``)
+comes back. Claims, each from torch's own refusals or signature:
+
+* activations uint8 only ("Only torch.quint8 is supported for activation tensor!",
+  seen with torch 2.13.0+cpu), output uint8 (quint8) only, no int32 output;
+* bias none or float (torch takes a float bias; the reference rounds it to the
+  accumulator scale x_scale*w_scale[o], half to even; the float32 model's deviation
+  counts the other way, adding it in real terms);
+* symmetric padding only (the functional takes one padding per axis); no zero batch;
+  no fused clamp;
+* requantization model float32 (fbgemm/x86 engine: a float multiplier; recalled from
+  memory, and what ``quantized.requantization`` measures).
+
+Reproduce: ``convwitness run --adapter torch-quant --profile quick --report /tmp/tq``
+(torch 2.13.0+cpu, numpy 2.4.6, Python 3.11, x86-64; quantized engine ``x86``).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from convwitness.errors import AdapterUnavailable
+from convwitness.geometry.capabilities import Capabilities
+from convwitness.geometry.quant import QuantCapabilities
+
+__all__ = ["TorchQuant"]
+
+
+class TorchQuant:
+    """torch.ao.nn.quantized.functional.conv{1,2,3}d on the CPU."""
+
+    name = "torch-quant"
+
+    def __init__(self, model: str = "float32"):
+        try:
+            import torch
+            import torch.ao.nn.quantized.functional as qF
+        except ImportError:
+            raise AdapterUnavailable("torch is not installed; fix: pip install 'convwitness[torch]' "
+                                     "(pin the CPU wheel, see DEVELOPERS.md)") from None
+        import warnings
+        warnings.filterwarnings("ignore", message=".*quantized tensor creation functions.*")
+        self._torch, self._qF = torch, qF
+        self.version = torch.__version__
+        self.engine = torch.backends.quantized.engine
+        self.capabilities = Capabilities(
+            padding=frozenset({"symmetric"}), zero_batch=False, passes=frozenset({"quantized"}),
+            quant=QuantCapabilities(x_dtypes=frozenset({"uint8"}), outputs=frozenset({"uint8"}),
+                                    bias=frozenset({"none", "float"}), clamp=False, model=model))
+
+    def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
+                  w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+        torch = self._torch
+        if any(lo != hi for lo, hi in padding):
+            raise ValueError(f"padding={padding}: torch's quantized conv takes symmetric padding only")
+        xq = torch._make_per_tensor_quantized_tensor(torch.from_numpy(x.copy()), float(x_scale),
+                                                     int(x_zero_point))
+        wt = torch.from_numpy(w.copy())
+        if len(w_scale) > 1 or len(w_zero_point) > 1:
+            cout = w.shape[0]
+            sc = torch.tensor(np.broadcast_to(np.asarray(w_scale, dtype=np.float64), (cout,)).copy())
+            zp = torch.tensor(np.broadcast_to(np.asarray(w_zero_point, dtype=np.int64), (cout,)).copy())
+            wq = torch._make_per_channel_quantized_tensor(wt, sc, zp, 0)
+        else:
+            wq = torch._make_per_tensor_quantized_tensor(wt, float(w_scale[0]), int(w_zero_point[0]))
+        fn = {1: self._qF.conv1d, 2: self._qF.conv2d, 3: self._qF.conv3d}[x.ndim - 2]
+        bias = None if b is None else torch.from_numpy(b.astype(np.float32))
+        y = fn(xq, wq, bias, stride=tuple(stride), padding=tuple(lo for lo, _ in padding),
+               dilation=tuple(dilation), groups=groups, scale=float(y_scale),
+               zero_point=int(y_zero_point), dtype=torch.quint8)
+        return y.int_repr().numpy().astype(np.uint8)
