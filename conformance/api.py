@@ -180,7 +180,7 @@ class Report:
 
 
 def certify(adapter, profile="quick", only=None, seed=0, isolation="process",
-            report_dir: str | None = None) -> Report:
+            report_dir: str | None = None, cluster: str | None = None) -> Report:
     """Certify ``adapter`` and return its :class:`Report`.
 
     ``adapter``: a spec string as ``--adapter`` takes it (a built-in name,
@@ -190,7 +190,9 @@ def certify(adapter, profile="quick", only=None, seed=0, isolation="process",
     runs every call in a worker process (spec strings only: an object lives in this
     process) or ``"none"``. ``report_dir``: where the report folder is written; None
     writes it to a new temporary folder (``Report.report_dir``), which is kept so the
-    witnesses can be replayed.
+    witnesses can be replayed. ``cluster``: a Dask scheduler address or ``"local:N"``, as
+    ``run --cluster`` takes it (spec strings only: every worker loads the adapter itself;
+    docs/cluster.md).
     """
     from .cases.profiles import get_profile
     from .report.outputs import write_views
@@ -200,11 +202,23 @@ def certify(adapter, profile="quick", only=None, seed=0, isolation="process",
         only = ",".join(only)
     if report_dir is None:
         report_dir = tempfile.mkdtemp(prefix="convwitness-report-")
-    target = _load(adapter, isolation, prof.call_timeout)
-    try:
-        doc, results = run_certify(target, profile=prof, only=only, seed=seed, report_dir=report_dir)
-    finally:
-        _close(target)
+    if cluster is not None:
+        if not isinstance(adapter, str):
+            raise ConvWitnessError("certify: cluster= needs an adapter spec string (each worker loads "
+                                   f"the adapter itself), got {type(adapter).__name__}; pass e.g. "
+                                   "'pkg.module:MyConv'")
+        from .run.cluster import certify_on_cluster
+        opts = {"isolation": isolation, "call_timeout": prof.call_timeout, "memory_limit": None,
+                "first_call_allowance": 2.0}
+        doc, results = certify_on_cluster(adapter, cluster, load_opts=opts, profile=prof, only=only,
+                                          seed=seed, report_dir=report_dir)
+    else:
+        target = _load(adapter, isolation, prof.call_timeout)
+        try:
+            doc, results = run_certify(target, profile=prof, only=only, seed=seed,
+                                       report_dir=report_dir)
+        finally:
+            _close(target)
     if not results:
         raise ConvWitnessError(f"certify: no invariant matched only={only!r}; "
                                "`convwitness invariants` lists the ids")

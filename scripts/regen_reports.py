@@ -6,7 +6,10 @@
 * ``reports/<adapter>/`` for each built-in adapter whose library is installed
   (reference, torch, jax, onnxruntime, onnx-reference, tensorflow, scipy) and for the Oxtervane OXT-16 demo port
   (``oxtervane-npu``, the README's default) and its planted tile-remainder sibling
-  (``oxtervane-npu-tailbug``): report.json, report.html, summary.md,
+  (``oxtervane-npu-tailbug``), the quantized kernels of onnxruntime and torch
+  (``onnxruntime-convinteger``, ``onnxruntime-qlinearconv``, ``torch-quant``) and the
+  Oxtervane int8 demo port with its planted padding bug (``oxtervane-int8``,
+  ``oxtervane-int8-padbug``): report.json, report.html, summary.md,
   junit.xml and any witnesses, written by ``convwitness run``. An adapter whose library
   is missing keeps its previous folder (the script says so).
 * ``reports/_demo/brindlemoss-0.3.0/`` and ``reports/_demo/brindlemoss-0.3.1/``: the invented
@@ -33,7 +36,9 @@ ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 REPORTS = os.path.join(ROOT, "reports")
 BUILTINS = ("reference", "torch", "jax", "onnxruntime", "onnx-reference", "tensorflow", "scipy",
             "oxtervane-npu",
-            "convwitness.adapters.oxtervane:OxtervaneNPUTailBug")
+            "convwitness.adapters.oxtervane:OxtervaneNPUTailBug",
+            "onnxruntime-convinteger", "onnxruntime-qlinearconv", "torch-quant",
+            "oxtervane-int8", "oxtervane-int8-padbug")
 DEMO = "reports/_demo/brindlemoss_port.py"
 DEMOS = (("brindlemoss-0.3.0", f"{DEMO}:BrindlemossPort030"), ("brindlemoss-0.3.1", f"{DEMO}:BrindlemossPort"))
 SCRATCH = (".hypothesis", "journal.jsonl")

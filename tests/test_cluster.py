@@ -261,3 +261,16 @@ def test_rebuild_of_a_cluster_journal_lists_invariants_in_the_planned_order(tmp_
     rebuilt = load_report(str(rep / "report.json"))
     assert [r["id"] for r in rebuilt["invariants"]] == head["planned"] == [r["id"] for r in doc["invariants"]]
     assert rebuilt["status"] == "complete"
+
+
+def test_python_api_takes_the_cluster_option(tmp_path, client):
+    """convwitness.certify(..., cluster=ADDRESS) gives the verdicts of the CLI's local run."""
+    import convwitness
+    rc, _, _ = _run(tmp_path / "local", PLANTED)
+    local = load_report(str(tmp_path / "local" / "report.json"))
+    report = convwitness.certify(PLANTED, only=ONLY, seed=3, report_dir=str(tmp_path / "api"),
+                                 cluster=client.scheduler.address)
+    assert report.document["environment"]["cluster"]["workers"] == 2
+    assert not report.conformant and rc == 1
+    assert {r["id"]: r["verdict"] for r in report.document["invariants"]} == \
+        {r["id"]: r["verdict"] for r in local["invariants"]}
