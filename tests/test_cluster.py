@@ -72,7 +72,13 @@ def test_cluster_run_equals_local_run(tmp_path, adapter, expected_rc):
     assert cluster["environment"]["cluster"] == {"address": "local:2", "workers": 2}
     assert "cluster" not in local["environment"]
     assert "Dask cluster" in (tmp_path / "cluster" / "report.html").read_text(encoding="utf-8")
-    assert _comparable(cluster, tmp_path / "cluster") == _comparable(local, tmp_path / "local")
+    a, b = _comparable(cluster, tmp_path / "cluster"), _comparable(local, tmp_path / "local")
+    differing = {i: sorted(k for k in set(a["invariants"][i]) | set(b["invariants"][i])
+                           if a["invariants"][i].get(k) != b["invariants"][i].get(k))
+                 for i in a["invariants"] if a["invariants"][i] != b["invariants"].get(i)}
+    assert not differing, {i: {k: (a["invariants"][i].get(k), b["invariants"][i].get(k)) for k in ks}
+                           for i, ks in differing.items()}
+    assert a == b
     def listing(folder):
         return sorted(os.listdir(folder)) if folder.is_dir() else []
     names = listing(tmp_path / "local" / "witnesses")

@@ -122,6 +122,7 @@ def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | No
     def deco(func):
         if id in REGISTRY:
             raise ConvWitnessError(f"invariant id {id!r} registered twice")
+        _MODULE_OF[id] = getattr(func, "__module__", "") or ""
         REGISTRY[id] = Invariant(id=id, statement=statement, passes=frozenset(passes),
                                  needs=needs or Needs(), func=func, requires=requires,
                                  informational_unless=informational_unless, adjust=adjust,
@@ -147,10 +148,23 @@ def _load():
         importlib.import_module(f"{__name__}.{name}")
 
 
+#: invariant id -> the module that registered it (kept when a test replaces the function)
+_MODULE_OF: dict = {}
+
+
+def _module_rank(inv: Invariant) -> tuple:
+    module = _MODULE_OF.get(inv.id, "").rpartition(".")[2]
+    return (_ORDER.index(module), "") if module in _ORDER else (len(_ORDER), module)
+
+
 def catalogue() -> list[Invariant]:
-    """Every registered invariant, in registration order."""
+    """Every registered invariant in one canonical order, whatever imported what first:
+    the modules in ``_ORDER`` then the others by name, and within a module the order of
+    definition. Runs, shards, cluster workers and generated suites depend on it (the
+    run-wide geometry pool is built in this order)."""
     _load()
-    return list(REGISTRY.values())
+    order = {inv_id: i for i, inv_id in enumerate(REGISTRY)}   # definition order in a module
+    return sorted(REGISTRY.values(), key=lambda inv: (_module_rank(inv), order[inv.id]))
 
 
 def by_surface() -> dict[str, list[Invariant]]:
