@@ -299,3 +299,16 @@ def test_missing_library_makes_the_quantized_adapter_unavailable(name, module, h
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     line = out.stdout.strip()
     assert line.startswith("UNAVAILABLE:") and hint in line and "\n" not in line, (line, out.stderr)
+
+
+def test_failing_quantized_case_goes_through_the_standard_profile_without_internal_error():
+    """The standard profile's extra passes (1-minimal local pass, further causes, known
+    causes) meet a quantized witness: the demo port's planted padding bug (raw 0 for the
+    input zero point) fails, and convwitness itself raises nothing (no "internal")."""
+    from convwitness import load_adapter
+    from convwitness.run.certify import certify
+    doc, results = certify(load_adapter("oxtervane-int8-padbug"), profile="standard",
+                           only="quantized.*", seed=0)
+    verdicts = {r.id: r.verdict for r in results}
+    assert "internal" not in verdicts.values(), {r.id: r.message for r in results}
+    assert verdicts["quantized.padding_zero"] == "fail"

@@ -46,6 +46,8 @@ def search_further(adapter, inv, profile, first, *, seed, report_dir, shrink, re
     limit = int(getattr(profile, "further_causes", 0) or 0)
     if limit <= 0 or first.verdict not in _FAILING or not first.witness or first.same_cause_as:
         return []
+    if inv.cases is not None:       # its own drawing recipe (long sums, quantized): no regions
+        return []
     regions = [region(first.witness["spec"])]
     if not regions[0]:
         return []
