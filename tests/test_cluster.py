@@ -45,11 +45,17 @@ def _run(folder, adapter, *extra):
 
 
 def _comparable(doc: dict, folder) -> dict:
-    """What must not differ between a local and a cluster run: everything but timings
-    and the report folder in the replay commands."""
+    """What must not differ between a local and a cluster run: everything but timings,
+    the report folder in the replay commands, and the per-example shares of the bound.
+    Those depend on the BLAS thread count (Dask workers run numpy with one thread, the
+    local run with the machine's default), which changes the float64 summation order of
+    the reference and so the last bits of every error; verdicts, witnesses and coverage
+    do not depend on it (seen in CI on a loaded machine: shares of forward.input_linearity
+    differed while everything else was equal)."""
     out = {}
     for r in doc["invariants"]:
-        r = {k: v for k, v in r.items() if k not in ("duration_s", "examples_per_s")}
+        r = {k: v for k, v in r.items()
+             if k not in ("duration_s", "examples_per_s", "shares", "worst_share", "worst_bound")}
         if r.get("witness"):
             w = dict(r["witness"])
             w["replay"] = w["replay"].replace(os.path.relpath(str(folder)), "DIR")
