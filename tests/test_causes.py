@@ -43,6 +43,8 @@ def test_clock_gives_a_first_call_allowance_and_never_reruns_a_hang():
     assert "30 s" in msg and "first-call" in msg
     with pytest.raises(AdapterTimeout, match="not run again"):
         clock.limit(new)
+    # once the port has hung, a new signature gets the probe limit, not the allowance
+    assert clock.limit(("forward", (3,), ())) == max(PROBE_FLOOR_S, 1.5)
     with clock.probing():
         assert clock.limit(old) == max(PROBE_FLOOR_S, 1.5)
         clock.answered(old, 4.0)                    # a slow port gets slow probes

@@ -10,9 +10,13 @@ Three rules keep a run on a hanging or slow port bounded and its verdicts honest
 * **A hang is never rerun.** A call that ran past its limit is remembered by its
   signature; calling it again raises :class:`AdapterTimeout` at once, saying when it hung.
 * **Probes run tight.** While :meth:`CallClock.probing` is active (replaying a known
-  cause in a later invariant), every call gets the probe limit: three times the slowest
-  call the port has answered so far, at least ``PROBE_FLOOR_S`` and at most the call
-  timeout. A slow but correct port answered slowly before, so its probes get as long.
+  cause in a later invariant, or probing smaller neighbours of a hang), every call gets
+  the probe limit: three times the slowest call the port has answered so far, at least
+  ``PROBE_FLOOR_S`` and at most the call timeout. A slow but correct port answered
+  slowly before, so its probes get as long.
+* **Once a port has hung**, a call with a new signature no longer gets the first-call
+  allowance: it gets the probe limit (a port that compiles slowly has answered slowly
+  before, so that limit is as long as its compiles were).
 """
 from __future__ import annotations
 
@@ -61,6 +65,8 @@ class CallClock:
         if self._probe:
             return self.probe_limit()
         if sig not in self.seen:
+            if self.hangs:          # the port hangs: a new signature is probed, not allowed more
+                return min(self.call_timeout * self.first_call_allowance, self.probe_limit())
             return self.call_timeout * self.first_call_allowance
         return self.call_timeout
 

@@ -52,6 +52,11 @@ class Minimized:
     note: str                  # one line for the witness
 
 
+#: the local pass on a hang: every replay that still hangs costs a probe limit, so it
+#: gets a tighter cap of its own
+HANG_CAP_S = 12.0
+
+
 def time_cap(budget_s: float) -> float:
     """Half the invariant's budget, between 5 and 60 s."""
     return min(60.0, max(5.0, float(budget_s) / 2.0))
@@ -177,6 +182,8 @@ def minimize(adapter, inv, case: Case, what, profile, *, cap_s: float | None = N
     """Walk from the failing ``case`` (whose outcome is ``what``) to a 1-minimal one."""
     want = outcome_verdict(what)
     cap = time_cap(profile.budget_s) if cap_s is None else float(cap_s)
+    if want == "timeout":
+        cap = min(cap, HANG_CAP_S)
     if want in ("pass", "internal"):
         return Minimized(case, what, False, 0, 0, "not minimized: the case does not fail "
                          "through the adapter")
