@@ -238,8 +238,16 @@ def test_diff_and_merge_accept_report_folders(tmp_path):
 
 # -- the sample reports ------------------------------------------------------------------
 def _samples():
+    """The committed sample reports: every report folder under reports/ except the ones
+    .gitignore keeps out (reports/quickstart/, written by the README's first command)."""
+    ignored = []
+    with open(os.path.join(ROOT, ".gitignore"), encoding="utf-8") as fh:
+        ignored = [line.strip().strip("/") for line in fh if line.strip().startswith("/reports/")]
     out = []
     for base, _dirs, files in os.walk(os.path.join(ROOT, "reports")):
+        rel = os.path.relpath(base, ROOT)
+        if any(rel == i or rel.startswith(i + os.sep) for i in ignored):
+            continue
         if "report.json" in files and "junit.xml" in files:
             out.append(base)
     return sorted(out)
