@@ -59,10 +59,10 @@ from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.formats import available
 from convwitness.numerics.bounds import ErrorModel
 
+from .onnxruntime_node import OPSET, conv_model  # one ONNX model for both adapters
+
 __all__ = ["OnnxReferenceAdapter", "claimed_dtypes"]
 
-OPSET = 22
-IR_VERSION = 10
 
 #: ONNX type strings -> convwitness dtype names
 _ONNX_TYPES = {"tensor(double)": "float64", "tensor(float)": "float32",
@@ -127,20 +127,8 @@ class OnnxReferenceAdapter:
         sess = self._cache.get(key)
         if sess is not None:
             return sess
-        helper = self._helper
-        elem = self._elem[dtype]
-        names = ["X", "W"] + (["B"] if has_bias else [])
-        node = helper.make_node(op, names, ["Y"], **{k: list(v) if isinstance(v, tuple) else v
-                                                     for k, v in attrs_key})
-        inputs = [helper.make_tensor_value_info("X", elem, ["N", "C"] + [f"S{i}" for i in range(ndim)]),
-                  helper.make_tensor_value_info("W", elem, ["M", "CG"] + [f"K{i}" for i in range(ndim)])]
-        if has_bias:
-            inputs.append(helper.make_tensor_value_info("B", elem, ["M"]))
-        graph = helper.make_graph([node], f"convwitness_{op}", inputs,
-                                  [helper.make_tensor_value_info("Y", elem, None)])
-        model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)],
-                                  producer_name="convwitness")
-        model.ir_version = IR_VERSION
+        attrs = {k: list(v) if isinstance(v, tuple) else v for k, v in attrs_key}
+        model = conv_model(self._helper, op, self._elem[dtype], ndim, attrs, has_bias)
         sess = self._cache[key] = self._evaluator(model)
         return sess
 

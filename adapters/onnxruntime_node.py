@@ -107,20 +107,7 @@ class OnnxRuntimeAdapter:
 
     # -- sessions ----------------------------------------------------------------------
     def _model(self, op, dtype, ndim, attrs, has_bias):
-        helper = self._helper
-        elem = self._elem[dtype]
-        names = ["X", "W"] + (["B"] if has_bias else [])
-        node = helper.make_node(op, names, ["Y"], **attrs)
-        inputs = [helper.make_tensor_value_info("X", elem, ["N", "C"] + [f"S{i}" for i in range(ndim)]),
-                  helper.make_tensor_value_info("W", elem, ["M", "CG"] + [f"K{i}" for i in range(ndim)])]
-        if has_bias:
-            inputs.append(helper.make_tensor_value_info("B", elem, ["M"]))
-        graph = helper.make_graph([node], f"convwitness_{op}", inputs,
-                                  [helper.make_tensor_value_info("Y", elem, None)])
-        model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)],
-                                  producer_name="convwitness")
-        model.ir_version = IR_VERSION
-        return model
+        return conv_model(self._helper, op, self._elem[dtype], ndim, attrs, has_bias)
 
     def _session(self, op, dtype, ndim, stride, padding, dilation, groups, has_bias,
                  output_padding=None):
@@ -166,3 +153,20 @@ def _channels_first(layout: str):
     if layout != "channels_first":
         raise ValueError(f"onnxruntime adapter: layout={layout!r}, expected 'channels_first' "
                          "(ONNX Conv is defined on NC(D)HW); transpose the arrays first")
+
+
+def conv_model(helper, op: str, elem, ndim: int, attrs: dict, has_bias: bool):
+    """A one-node ONNX model of ``op`` (Conv or ConvTranspose) on inputs X, W (and B) of
+    tensor type ``elem`` with symbolic shapes, output Y (shared with onnx-reference)."""
+    names = ["X", "W"] + (["B"] if has_bias else [])
+    node = helper.make_node(op, names, ["Y"], **attrs)
+    inputs = [helper.make_tensor_value_info("X", elem, ["N", "C"] + [f"S{i}" for i in range(ndim)]),
+              helper.make_tensor_value_info("W", elem, ["M", "CG"] + [f"K{i}" for i in range(ndim)])]
+    if has_bias:
+        inputs.append(helper.make_tensor_value_info("B", elem, ["M"]))
+    graph = helper.make_graph([node], f"convwitness_{op}", inputs,
+                              [helper.make_tensor_value_info("Y", elem, None)])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)],
+                              producer_name="convwitness")
+    model.ir_version = IR_VERSION
+    return model
