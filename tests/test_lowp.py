@@ -176,3 +176,42 @@ def test_torch_bf16_verdict_on_the_withdrawn_conv3d_case_follows_torchs_output(m
     exact = signal.correlate(padded, np.ones(spec.kernel_size), mode="valid", method="direct")[:, :, ::2]
     right = np.array_equal(seen[0].astype(np.float64), np.broadcast_to(exact, seen[0].shape))
     assert ev.ok == right, ev.message
+
+
+def _float8_case_with_a_result_that_underflows(k_wanted=1):
+    """A float8_e4m3fn case whose exact result 2^-10 (x = w = 2^-5) rounds to 0 while its
+    double 2^-9 is the smallest subnormal (OCP 8-bit floating point spec, E4M3: bias 7,
+    3 mantissa bits, so subnormal step 2^-9), next to an ordinary result 2^-5 (x = 1)."""
+    from convwitness.cases.values import SALTS
+    from convwitness.invariants._linear import power_of_two
+    f8 = ml_dtypes.float8_e4m3fn
+    spec = ConvSpec(batch=1, in_channels=1, out_channels=1, input_size=(2,), kernel_size=(1,),
+                    dtype="float8_e4m3fn", bias=False)
+    x = np.array([[[2.0 ** -5, 1.0]]]).astype(f8)
+    w = np.array([[[2.0 ** -5]]]).astype(f8)
+    for seed in range(200):
+        case = Case(spec, x, w, None, np.ones(spec.y_shape, f8), "uniform", seed)
+        if power_of_two(case, SALTS["input_scale"]) == k_wanted:
+            return case
+    raise AssertionError("no seed draws k=1")
+
+
+def test_homogeneity_excuses_a_result_rounded_to_zero_below_the_subnormal_range(monkeypatch):
+    """f(x) rounds 2^-10 to 0 and f(2x) gives 2^-9: both right (round to nearest even,
+    IEEE 754-2019 4.3.1 as carried over to float8 by the OCP spec), so the port must pass;
+    the element next to it, 2^-5 -> 2^-4, is still compared bit for bit."""
+    case = _float8_case_with_a_result_that_underflows()
+    adapter = load_adapter("reference")
+    ev = get("forward.input_linearity").check(adapter, case, Context())
+    assert ev.ok, ev.message
+
+    real = adapter.forward
+
+    def zero_on_doubled(spec, x, w, b=None):    # wrong on the scaled call: zeros where 2^-4 is due
+        y = real(spec, x, w, b)
+        doubled = np.array_equal(x.astype(np.float64), 2 * case.x.astype(np.float64))
+        return np.zeros_like(y) if doubled else y
+
+    monkeypatch.setattr(adapter, "forward", zero_on_doubled)
+    bad = get("forward.input_linearity").check(adapter, case, Context())
+    assert not bad.ok and "homogeneity" in bad.message

@@ -16,7 +16,7 @@ from ..geometry.formats import get_format, to_format
 from ..cases.strategies import Needs
 from ..cases.values import SALTS, aux_rng
 from . import invariant
-from ._linear import power_of_two, products_stay_normal, second_operand
+from ._linear import near_underflow, power_of_two, products_stay_normal, second_operand
 from ._common import judge, model_of, overflow_possible, pass_bound
 
 GRADS = (("grad_x", "grad_input"), ("grad_w", "grad_weight"), ("grad_b", "grad_bias"))
@@ -201,13 +201,14 @@ def _homogeneity(adapter, case, g1, base):
     gots = _backward(adapter, spec, x, w, b, gs.astype(g1.dtype))
     deterministic = adapter.capabilities.deterministic
     scaled_bounds = None if deterministic else _bounds(adapter, spec, x, w, gs, b is not None)
-    small = max(fmt.tiny, get_format(m.output).tiny) * 2.0 ** (abs(k) + 1)
+    tiny = max(fmt.tiny, get_format(m.output).tiny)
     results = []
     for index, (name, pass_) in enumerate(GRADS):
         if pass_ not in base:
             continue
         y1 = got1[index].astype(np.float64)
-        free = (np.abs(y1) < small) | ~np.isfinite(y1) | overflow_possible(spec, adapter, base[pass_][1])
+        free = near_underflow(y1, gots[index], k, tiny) | ~np.isfinite(y1) | \
+            overflow_possible(spec, adapter, base[pass_][1])
         tol = 0.0 if deterministic else scaled_bounds[pass_][1].values + 2.0 ** k * base[pass_][1].values
         results.append(compare(gots[index], y1 * 2.0 ** k, tol, what=name, allow=free, exact=deterministic,
                                criterion=f"homogeneity in g: {name}(2^{k}·g) == 2^{k}·{name}(g)"

@@ -10,7 +10,7 @@ from ..geometry.formats import get_format, to_format
 from ..cases.strategies import Needs
 from ..cases.values import EXACT_KINDS, SALTS
 from . import invariant
-from ._linear import power_of_two, products_stay_normal, second_operand
+from ._linear import near_underflow, power_of_two, products_stay_normal, second_operand
 from ._common import check_output_contract, copies, judge, model_of, overflow_possible, pass_bound, run_forward, self_bound
 
 LINEAR_KINDS = ("small_int", "pow2", "uniform", "wide")
@@ -119,9 +119,8 @@ def _linearity(adapter, case, name: str, purpose: str):
     if not np.array_equal(scaled.astype(np.float64), a1.astype(np.float64) * 2.0 ** k):
         return add                       # the scaled operand is not exact in the dtype
     ys = run_forward(adapter, spec, *args(scaled), None)
-    out_tiny = get_format(spec.dtype).tiny
     y1f = y1.astype(np.float64)
-    free_h = ((np.abs(y1f) < out_tiny * 2.0 ** abs(k)) & (y1f != 0)) | ~np.isfinite(y1f) | \
+    free_h = near_underflow(y1f, ys, k, get_format(spec.dtype).tiny) | ~np.isfinite(y1f) | \
         overflow_possible(spec, adapter, b1)
     deterministic = adapter.capabilities.deterministic
     hom_tol = 0.0 if deterministic else 2 * b1.values * 2.0 ** k

@@ -11,7 +11,7 @@ from ..report.document import build_report, write_report
 from .causes import KnownCauses
 from .further import search_further
 from .heartbeat import HEARTBEAT_S, Heartbeat
-from .signals import Terminated, as_interrupt
+from .signals import Terminated, as_interrupt, check as interruption_check
 from .runner import InvariantResult, run_invariant, select
 
 __all__ = ["certify"]
@@ -50,6 +50,7 @@ def certify(adapter, *, profile="quick", only: str | None = None, seed: int | No
         stop.callback(beat.close)
     try:
         for i, (inv, refusal) in enumerate(chosen):
+            interruption_check()
             if progress:
                 progress("start", {"index": i, "total": len(chosen), "id": inv.id})
             res = None

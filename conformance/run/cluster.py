@@ -26,6 +26,7 @@ one-line error (exit 3) before any task is submitted.
 """
 from __future__ import annotations
 
+import contextlib
 import os
 import shlex
 import time
@@ -196,7 +197,7 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
     from ..report.document import build_report, write_report
     from .journal import Journal
     from .runner import select
-    from .signals import Terminated, as_interrupt
+    from .signals import Terminated, as_interrupt, check as interruption_check
     distributed = _distributed()
     profile = get_profile(profile)
     own = None
@@ -206,6 +207,7 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
         name = cluster
     futures = {}
     run_id = run_id or os.urandom(8).hex()
+    stop = contextlib.ExitStack()
     try:
         wspec = _worker_spec(spec)
         adapter, workers = identity or _identity(client, wspec, load_opts, name, run_id)
@@ -224,37 +226,38 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
         quiet = _Quiet()
         done: dict = {}
         status, lost = "complete", []
-        with as_interrupt():
-            try:
-                for inv_id in order:
-                    fut = client.submit(task, wspec, load_opts, run_id, inv_id, profile, seed, shrink,
-                                        pure=False, key=f"convwitness-{inv_id}-{os.urandom(4).hex()}")
-                    futures[fut] = inv_id
-                for fut in distributed.as_completed(list(futures)):
-                    inv_id = futures.pop(fut)     # released once read: a worker lost later costs no rerun
-                    try:
-                        data = fut.result()
-                    except Exception as exc:      # the scheduler went away, or workers kept dying
-                        why = (str(exc).splitlines() or [""])[0].replace(fut.key, "the task")
-                        lost.append((inv_id, f"{type(exc).__name__}: {why}"))
-                        status = "partial"
-                        continue
-                    res = _settle(data, report_dir) if report_dir else data["result"]
-                    done[inv_id] = res
-                    if journal is not None:
-                        journal.append(res)
-                    if progress:
-                        progress("done", {"index": len(done) - 1, "total": len(order), "result": _view(res),
-                                          "elapsed": time.perf_counter() - t0})
-            except KeyboardInterrupt as exc:
-                status = "partial"
-                if progress:
-                    progress("interrupted", {"done": len(done), "total": len(order),
-                                             "signal": str(exc) if isinstance(exc, Terminated) else "SIGINT"})
-            finally:
-                quiet.close()
+        stop.enter_context(as_interrupt())   # left once the report is written
+        try:
+            for inv_id in order:
+                fut = client.submit(task, wspec, load_opts, run_id, inv_id, profile, seed, shrink,
+                                    pure=False, key=f"convwitness-{inv_id}-{os.urandom(4).hex()}")
+                futures[fut] = inv_id
+            for fut in distributed.as_completed(list(futures)):
+                interruption_check()          # a signal whose exception was swallowed
+                inv_id = futures.pop(fut)     # released once read: a worker lost later costs no rerun
+                try:
+                    data = fut.result()
+                except Exception as exc:      # the scheduler went away, or workers kept dying
+                    why = (str(exc).splitlines() or [""])[0].replace(fut.key, "the task")
+                    lost.append((inv_id, f"{type(exc).__name__}: {why}"))
+                    status = "partial"
+                    continue
+                res = _settle(data, report_dir) if report_dir else data["result"]
+                done[inv_id] = res
                 if journal is not None:
-                    journal.close()
+                    journal.append(res)
+                if progress:
+                    progress("done", {"index": len(done) - 1, "total": len(order), "result": _view(res),
+                                      "elapsed": time.perf_counter() - t0})
+        except KeyboardInterrupt as exc:
+            status = "partial"
+            if progress:
+                progress("interrupted", {"done": len(done), "total": len(order),
+                                         "signal": str(exc) if isinstance(exc, Terminated) else "SIGINT"})
+        finally:
+            quiet.close()
+            if journal is not None:
+                journal.close()
         for why in dict.fromkeys(w for _, w in lost) if warn else []:
             ids = [i for i, w in lost if w == why]
             warn(f"{len(ids)} invariant(s) lost to the cluster, not in the report ({why}): {', '.join(ids)}; rerun to complete it")
@@ -267,6 +270,7 @@ def certify_on_cluster(spec: str, cluster: str, *, load_opts: dict, profile="qui
             write_report(doc, report_dir)
         return doc, results
     finally:
+        stop.close()                   # the previous signal handlers come back
         for fut in futures:
             if not fut.done():
                 fut.cancel()

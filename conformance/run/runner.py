@@ -26,6 +26,7 @@ from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
 from ..cases.features import feature_of, pair_tags, reach_of
 from .covering import covering_examples, free_examples, with_examples
+from .signals import check as interruption_check
 
 __all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted",
            "SKIP_CAP", "DECIDING_FAILURES"]
@@ -173,6 +174,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         tally.reach.update(reach_of(spec) | pair_tags(spec))
 
     def body(cases):
+        interruption_check()           # a signal whose exception was swallowed (run/signals.py)
         now = time.perf_counter()
         if tally.started is None:
             tally.started = now
