@@ -90,6 +90,34 @@ def test_schedule_reaches_every_target_of_every_invariant(adapter):
     assert seen >= 20
 
 
+@pytest.mark.parametrize("seed", range(5))
+def test_schedule_reaches_every_admitted_feature_pair_on_every_seed(seed):
+    """Every admitted combination of the scheduled pairs is in every seed's schedule,
+    strided depthwise included (depthwise and strided kernels are separate code paths in
+    optimised libraries: common practice, no source)."""
+    from convwitness.cases.features import pair_tags
+    from convwitness.cases.schedule import pair_targets
+    caps = load_adapter("reference").capabilities
+    for inv in catalogue():
+        if inv.refusal(caps) or inv.cases is not None:
+            continue
+        needs = inv.needs_for(caps)
+        specs = schedule(caps, QUICK, needs, seed=seed, salt=inv.id)
+        reached = set().union(*(reach_of(s) | pair_tags(s) for s in specs))
+        wanted = set(pair_targets(caps, needs))
+        assert wanted <= reached, (inv.id, sorted(wanted - reached))
+    wanted = set(pair_targets(caps, get("grad_weight.reference").needs_for(caps)))
+    assert "pair:groups×stride=depthwise×strided" in wanted
+
+
+def test_a_strided_depthwise_weight_gradient_bug_is_caught_on_every_seed():
+    """The planted bug needs depthwise, stride > 1 and a kernel row > 1 at once
+    (zoo_backward.DepthwiseWeightGradLastRow): the pair schedule puts it on every seed."""
+    out = io.StringIO()
+    rc = selftest(seeds="0-4", only="depthwise_weight_grad_last_row", stdout=out, stderr=io.StringIO())
+    assert rc == 0 and "5 of 5 (bug, seed) cells caught" in out.getvalue(), out.getvalue()
+
+
 def test_schedule_targets_name_every_coincidence_for_a_plain_2d_claim():
     caps = load_adapter("reference").capabilities
     t = targets(caps, get("forward.reference").needs_for(caps))

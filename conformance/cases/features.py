@@ -114,7 +114,7 @@ def reach_of(spec: ConvSpec) -> set:
 #: the value combinations the invariant admits (name -> the two feature_of keys)
 PAIRS = {"stride×dilation": ("stride", "dilation"), "groups×padding": ("groups", "padding"),
          "remainder×dilation": ("remainder", "dilation"), "layout×groups": ("layout", "groups"),
-         "dtype×ndim": ("dtype", "ndim")}
+         "groups×stride": ("groups", "stride"), "dtype×ndim": ("dtype", "ndim")}
 
 
 def pair_tags(spec: ConvSpec) -> set:

@@ -15,6 +15,12 @@ The schedule is greedy: each entry forces one not-yet-reached value of every cat
 at once (the builder ignores a forced choice it cannot honour), keeps the geometry if
 it reaches something new, and falls back to forcing one target alone; a target that
 no try reaches stays a hole, which the report names.
+
+Then the feature pairs of :data:`SCHEDULED_PAIRS` (``pair:`` tags, as
+:func:`~convwitness.cases.features.pair_tags` reads them): a bug that needs two features
+at once (a strided depthwise kernel, a dilated kernel with a stride remainder) is on
+every seed's path only if each admitted combination is scheduled, not left to the free
+search's odds. dtype×ndim is reported, not scheduled (it would multiply the geometries).
 """
 from __future__ import annotations
 
@@ -23,12 +29,27 @@ import zlib
 from ..geometry.capabilities import Capabilities
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
                    dtypes_for, features_for, groupings_for, satisfies)
-from .features import reach_of
+from .features import PAIRS, pair_tags, reach_of
 from .profiles import Profile
 
-__all__ = ["targets", "schedule", "value_kinds", "pair_space", "MAX_ENTRIES"]
+__all__ = ["targets", "schedule", "value_kinds", "pair_space", "MAX_ENTRIES", "SCHEDULED_PAIRS"]
 
 MAX_ENTRIES = 24        # explicit geometries per invariant at most
+#: the feature pairs whose admitted combinations the schedule reaches (pair: tags)
+SCHEDULED_PAIRS = ("groups×stride", "stride×dilation", "remainder×dilation", "layout×groups",
+                   "groups×padding")
+#: builder choices that give one value of a feature_of key (pair targets)
+_VALUE_FORCE = {
+    ("stride", "strided"): {"stride": "max"}, ("stride", "unit"): {"stride": "min", "feature": "plain"},
+    ("dilation", "dilated"): {"dilation": "max"}, ("dilation", "none"): {"dilation": "min"},
+    ("groups", "single"): {"grouping": "single"}, ("groups", "grouped"): {"grouping": "grouped"},
+    ("groups", "depthwise"): {"grouping": "depthwise"},
+    ("padding", "none"): {"asymmetric": False, "pad": 0, "feature": "plain"},
+    ("padding", "symmetric"): {"asymmetric": False, "pad": "max", "feature": "plain"},
+    ("padding", "asymmetric"): {"asymmetric": True, "pad_lo": "max", "pad_hi": 0, "feature": "plain"},
+    ("padding", "negative"): {"asymmetric": True, "pad_lo": "min", "pad": "min", "feature": "plain"},
+    ("remainder", "nonzero"): {"feature": "remainder"}, ("remainder", "zero"): {"stride": "min"},
+}
 TRIES = 12              # seeded tries per forced combination
 
 # forced builder choices that produce a tag (tags not listed force their own label)
@@ -97,6 +118,25 @@ def _force(tag: str) -> dict:
     return {cat: name}
 
 
+def _pair_force(tag: str) -> dict:
+    """Builder choices for a ``pair:<name>=<a>×<b>`` target."""
+    name, _, values = tag[len("pair:"):].partition("=")
+    keys, vals = PAIRS[name], values.split("×")
+    forced: dict = {}
+    for key, val in zip(keys, vals):
+        if key in ("layout", "dtype"):
+            forced[key] = val
+        elif key == "ndim":
+            forced["ndim"] = int(val)
+        else:
+            forced.update(_VALUE_FORCE.get((key, val), {}))
+    return forced
+
+
+def _tags(spec) -> set:
+    return reach_of(spec) | pair_tags(spec)
+
+
 def _try(caps, profile, needs, forced: dict, seed: int, wanted: set):
     """The first seeded geometry under ``forced`` that reaches one of ``wanted``, and what
     it reaches of them (None, empty set when no try does)."""
@@ -105,7 +145,7 @@ def _try(caps, profile, needs, forced: dict, seed: int, wanted: set):
             spec = build_spec(RngPicker(seed * 7919 + t, forced), caps, profile, needs)
         except Reject:
             continue
-        new = reach_of(spec) & wanted
+        new = _tags(spec) & wanted
         if new:
             return spec, new
     return None, set()
@@ -157,6 +197,41 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
         if pool is not None:
             pool.append((spec, frozenset(reach_of(spec))))
         remaining = [t for t in remaining if t not in new]
+    return _pairs(caps, profile, needs, base, specs, pool)
+
+
+def pair_targets(caps: Capabilities, needs: Needs) -> list[str]:
+    """The ``pair:`` tags of :data:`SCHEDULED_PAIRS` this invariant admits."""
+    space = pair_space(caps, needs)
+    return [f"pair:{name}={combo}" for name in SCHEDULED_PAIRS for combo in space.get(name, [])]
+
+
+def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
+    """``specs`` extended by geometries that reach the admitted pair combinations the
+    schedule has not reached yet: from the pool first, then fresh (one forced pair each)."""
+    reached = set().union(*(_tags(sp) for sp in specs)) if specs else set()
+    remaining = [t for t in pair_targets(caps, needs) if t not in reached]
+    if pool and remaining:
+        usable = [sp for sp, _ in pool if sp not in specs and satisfies(sp, caps, profile, needs)]
+        for sp in usable:
+            if len(specs) >= MAX_ENTRIES or not remaining:
+                break
+            got = _tags(sp) & set(remaining)
+            if got:
+                specs.append(sp)
+                remaining = [t for t in remaining if t not in got]
+    step = 0
+    while remaining and len(specs) < MAX_ENTRIES:
+        step += 1
+        tag = remaining.pop(0)
+        spec, new = _try(caps, profile, needs, _pair_force(tag), base + 20011 + step, {tag})
+        if not new:
+            continue                    # not reachable under these needs: a hole in the pair %
+        specs.append(spec)
+        if pool is not None:
+            pool.append((spec, frozenset(reach_of(spec))))
+        got = _tags(spec)
+        remaining = [t for t in remaining if t not in got]
     return specs
 
 
