@@ -153,6 +153,22 @@ def test_claimed_zero_batch_is_reached_by_forward_contract_on_every_seed(seed):
     assert r.witness["spec"]["batch"] == 0
 
 
+@pytest.mark.parametrize("seed", range(3))
+def test_no_target_is_reached_only_by_a_skipped_example(seed):
+    """forward.shift_equivariance skips geometries along which no shift says anything; its
+    schedule no longer spends targets on them: no hole, no skipped example, and one output
+    position (where no shift is possible) is not a target. A shift by one stride moves the
+    output by one position: shift equivariance of correlation, common practice, no source."""
+    caps = load_adapter("reference").capabilities
+    inv = get("forward.shift_equivariance")
+    assert "coincidence:output_one" not in targets(caps, inv.needs_for(caps))
+    r = run_invariant(load_adapter("reference"), inv, QUICK, seed=seed, shrink=False)
+    assert r.verdict == "pass", r.message
+    from convwitness.report.reach import invariant_reach
+    holes = invariant_reach(r.reach)["holes"]
+    assert holes == [] and r.skipped == 0, (holes, r.skip_reasons)
+
+
 def test_report_reach_of_a_run_names_targets_and_what_was_reached():
     r = run_invariant(load_adapter("reference"), get("forward.contract"), QUICK, seed=0)
     assert r.verdict == "pass"

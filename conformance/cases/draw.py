@@ -16,7 +16,8 @@ from __future__ import annotations
 
 import math
 import random
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Callable
 
 from ..errors import SpecError
 from ..geometry.capabilities import Capabilities
@@ -52,6 +53,11 @@ class Needs:
     ``bias``/``stride``/``dilation``/``padding``/``grouped`` force the property
     (True), forbid it (False) or leave it free (None). ``kinds`` are the value kinds
     allowed. ``layouts`` restricts the layout; ``batch_min`` the batch size.
+    ``applies(spec, caps)`` is the invariant's own geometry condition (what it would
+    otherwise skip): a geometry it refuses is never drawn, scheduled or reused, so no
+    scheduled target is reached only by a skipped example. ``never`` lists the targets
+    no geometry meeting that condition can have (left out of the schedule's targets and
+    the report's holes: e.g. one output position for a shift of the output).
     """
 
     transposed: bool = False
@@ -68,6 +74,8 @@ class Needs:
     dtypes: tuple | None = None
     ndims: tuple | None = None
     features: tuple | None = None
+    applies: Callable | None = field(default=None, compare=False)
+    never: tuple = ()
 
     def __post_init__(self):
         bad = [k for k in self.kinds if k not in KINDS]
@@ -359,6 +367,8 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
     if not caps.admits(spec) or max(math.prod(spec.x_shape), math.prod(spec.w_shape),
                                     math.prod(spec.y_shape)) > profile.max_elements:
         pick.reject()
+    if needs.applies is not None and not needs.applies(spec, caps):
+        pick.reject()
     return spec
 
 
@@ -384,4 +394,5 @@ def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs
         if allowed is not None and value not in allowed:
             return False
     return caps.admits(spec) and spec.dtype in dtypes_for(caps, needs) and max(
-        math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements
+        math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements \
+        and (needs.applies is None or needs.applies(spec, caps))

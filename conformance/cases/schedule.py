@@ -102,7 +102,7 @@ def targets(caps: Capabilities, needs: Needs) -> list[str]:
         add("corner:max_output_padding")
     for k in needs.kinds:
         add(f"kind:{k}")
-    return out
+    return [t for t in out if t not in needs.never]
 
 
 def _force(tag: str) -> dict:
@@ -137,10 +137,10 @@ def _tags(spec) -> set:
     return reach_of(spec) | pair_tags(spec)
 
 
-def _try(caps, profile, needs, forced: dict, seed: int, wanted: set):
+def _try(caps, profile, needs, forced: dict, seed: int, wanted: set, tries: int = TRIES):
     """The first seeded geometry under ``forced`` that reaches one of ``wanted``, and what
     it reaches of them (None, empty set when no try does)."""
-    for t in range(TRIES):
+    for t in range(tries):
         try:
             spec = build_spec(RngPicker(seed * 7919 + t, forced), caps, profile, needs)
         except Reject:
@@ -187,7 +187,7 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
         spec, new = _try(caps, profile, needs, forced, base + step, set(remaining))
         if not new:
             spec, new = _try(caps, profile, needs, _force(remaining[0]), base + step + 10007,
-                             {remaining[0]})
+                             {remaining[0]}, tries=4 * TRIES)
             if new:
                 new = reach_of(spec) & set(remaining)
             else:

@@ -167,26 +167,42 @@ def dilation(adapter, case, ctx):
                  criterion=f"dilation: f(x, w; d={spec.dilation}) == f(x, zero-inserted w; 1)")
 
 
+def _shiftable(spec, caps) -> dict:
+    """Axis -> shifted spec, for every axis along which a shift by one stride says
+    something: two outputs or more, a shifted input still admitted, and a shifted window
+    right of the leading padding."""
+    out = {}
+    for a in range(spec.ndim):
+        s = spec.stride[a]
+        if spec.output_size[a] < 2:
+            continue
+        size = list(spec.input_size)
+        size[a] -= s
+        try:
+            shifted = spec.replace(input_size=tuple(size))
+        except Exception:       # shorter than the kernel
+            continue
+        if caps.admits(shifted) and -(-max(spec.padding[a][0], 0) // s) < shifted.output_size[a]:
+            out[a] = shifted
+    return out
+
+
 @invariant("forward.shift_equivariance", passes=("forward",),
+           needs=Needs(applies=lambda spec, caps: bool(_shiftable(spec, caps)),
+                       never=("coincidence:output_one",)),
            statement="shifting the input by one stride shifts the output by one position")
 def translation(adapter, case, ctx):
     """With x'[..., i] = x[..., i + s] along one axis: f(x')[..., h] = f(x)[..., h + 1] for every
     h whose window lies right of the leading padding (h >= ceil(p_lo/s)), within both bounds."""
     spec = case.spec
     rng = aux_rng(case.seed, SALTS["shift_axis"])
-    axes = [a for a in range(spec.ndim) if spec.output_size[a] >= 2]
+    axes = _shiftable(spec, adapter.capabilities)
     if not axes:
-        return _skip("no axis has two outputs")
-    a = int(rng.choice(axes))
+        return _skip("no axis can be shifted (two outputs, a shifted input admitted, a window "
+                     "right of the leading padding)")
+    a = int(rng.choice(sorted(axes)))
     s = spec.stride[a]
-    size = list(spec.input_size)
-    size[a] -= s
-    try:
-        shifted = spec.replace(input_size=tuple(size))
-    except Exception:
-        return _skip("the shifted input is shorter than the kernel")
-    if not adapter.capabilities.admits(shifted):
-        return _skip(f"shifted spec not admitted: {adapter.capabilities.refusal(shifted)}")
+    shifted = axes[a]
     ax = _spatial(spec, a)
     xs = np.ascontiguousarray(np.take(case.x, range(s, spec.input_size[a]), axis=ax))
     x, w, b, _ = copies(case)
@@ -194,8 +210,6 @@ def translation(adapter, case, ctx):
     y2 = run_forward(adapter, shifted, xs, case.w, case.b)
     n2 = shifted.output_size[a]
     start = -(-max(spec.padding[a][0], 0) // s)
-    if start >= n2:
-        return _skip("every shifted window touches the leading padding")
     later = np.take(y, range(1, 1 + n2), axis=ax)
     _, bound = _fwd(adapter, spec, case.x, case.w, case.b, y)
     _, bound2 = _fwd(adapter, shifted, xs, case.w, case.b, y2)
