@@ -201,7 +201,10 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
 
 
 def pair_targets(caps: Capabilities, needs: Needs) -> list[str]:
-    """The ``pair:`` tags of :data:`SCHEDULED_PAIRS` this invariant admits."""
+    """The ``pair:`` tags of :data:`SCHEDULED_PAIRS` this invariant admits (none for an
+    invariant of empty batches: no value of theirs can show a path's arithmetic)."""
+    if needs.zero_batch:
+        return []
     space = pair_space(caps, needs)
     return [f"pair:{name}={combo}" for name in SCHEDULED_PAIRS for combo in space.get(name, [])]
 
