@@ -319,7 +319,7 @@ def test_protocol_faults_name_the_place_and_the_next_call_works(tmp_path, mode, 
     try:
         with pytest.raises(exc, match=pattern) as info:
             a.forward(x, w, None, **KW1)
-        assert time.monotonic() - t0 < 5
+        assert time.monotonic() - t0 < 60     # bounded (no hang); generous for a loaded machine
         if exc is not AdapterOutputError:
             assert "call 1 in mode " + mode in info.value.output     # stderr is kept
         np.testing.assert_array_equal(a.forward(x, w, None, **KW1), x)
