@@ -41,7 +41,7 @@ class ReferenceAdapter:
             dtypes=dtypes, layouts=frozenset({"channels_first", "channels_last"}),
             padding=frozenset({"symmetric", "asymmetric", "negative"}),
             passes=frozenset({"forward", "backward", "transposed"}),
-            ieee_special=True,
+            ieee_special=True, zero_spatial=True,
             error_model=ErrorModel(accumulate="float64", product="float64", note="float64, one rounding"),
         )
 

@@ -169,6 +169,45 @@ def test_no_target_is_reached_only_by_a_skipped_example(seed):
     assert holes == [] and r.skipped == 0, (holes, r.skip_reasons)
 
 
+class _RaisesOnEmptyAxis(ReferenceAdapter):
+    """Claims zero_spatial (as the reference does) but raises on an input axis of length 0,
+    as torch 2.13's conv1d does ("Only zero batch or zero channel inputs are supported";
+    seen with python3 -c "import torch, torch.nn.functional as F;
+    F.conv1d(torch.zeros(1,1,0), torch.ones(1,1,1), padding=1)" on this CPU machine)."""
+    name = "raises-on-empty-axis"
+
+    def forward(self, x, w, b, **kw):
+        if x.size == 0 and x.shape[0] > 0:      # either layout: channels are never 0 here
+            raise ValueError("expected every spatial axis to be non-empty")
+        return super().forward(x, w, b, **kw)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_claimed_zero_size_axis_is_reached_on_every_seed(seed):
+    a = load_adapter(_RaisesOnEmptyAxis())
+    assert a.capabilities.zero_spatial
+    r = run_invariant(a, get("forward.reference"), QUICK, seed=seed, shrink=False)
+    assert r.verdict == "error", (r.verdict, r.message)
+    assert "non-empty" in r.message and 0 in r.witness["spec"]["input_size"]
+
+
+def test_zero_size_axis_is_outside_a_claim_that_does_not_name_it():
+    """Off by default: a certificate never covers a zero-size axis no example reached."""
+    from convwitness.geometry.capabilities import Capabilities
+    spec = ConvSpec(batch=1, in_channels=1, out_channels=1, input_size=(0,), kernel_size=(1,),
+                    padding=1, dtype="float64")
+    assert "zero_spatial=False" in Capabilities().refusal(spec)
+    assert Capabilities(zero_spatial=True).admits(spec)
+    caps = load_adapter("torch").capabilities if _has("torch") else Capabilities()
+    assert not caps.zero_spatial
+    assert "corner:zero_spatial" not in targets(caps, get("forward.reference").needs_for(caps))
+
+
+def _has(module: str) -> bool:
+    import importlib.util
+    return importlib.util.find_spec(module) is not None
+
+
 def test_report_reach_of_a_run_names_targets_and_what_was_reached():
     r = run_invariant(load_adapter("reference"), get("forward.contract"), QUICK, seed=0)
     assert r.verdict == "pass"

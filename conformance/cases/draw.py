@@ -309,6 +309,28 @@ def _channels(pick, caps: Capabilities, profile: Profile, needs: Needs, coincide
     return G, G * cg, G * og, kind
 
 
+def zero_spatial_allowed(caps: Capabilities, needs: Needs) -> bool:
+    """Whether this invariant may draw a zero-size spatial axis (claimed, padding allowed,
+    not transposed, not an empty batch already)."""
+    return bool(caps.zero_spatial and not needs.transposed and needs.padding is not False
+                and not needs.zero_batch and {"symmetric", "asymmetric"} & set(caps.padding))
+
+
+def _empty_axis(axis, caps: Capabilities):
+    """The axis with length 0 and padding enough for the windows (all of them in it)."""
+    _, k, s, d, lo, hi, op = axis
+    e = d * (k - 1) + 1
+    lo, hi = max(lo, 0), max(hi, 0)
+    if lo + hi < e:
+        if "asymmetric" in caps.padding:
+            hi = e - lo
+        else:
+            lo = hi = -(-e // 2)
+    if lo != hi and "asymmetric" not in caps.padding:
+        lo = hi = max(lo, hi)
+    return 0, k, s, d, lo, hi, op
+
+
 def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> ConvSpec:
     """One admitted geometry from the picker's choices (``pick.reject()`` when none)."""
     ndims = sorted(caps.ndims if needs.ndims is None else set(caps.ndims) & set(needs.ndims))
@@ -342,6 +364,9 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
         kernel = first[1] if coincidence == "square_kernel" else None
         axes = [first] + [_axis(pick, feature, coincidence, caps, profile, needs, lmax, kernel)
                           for _ in range(ndim - 1)]
+    # one draw in eight; 7, not 0, so that shrinking (toward 0) leaves the axis non-empty
+    if zero_spatial_allowed(caps, needs) and pick.int(0, 7, "zero_spatial") == 7:
+        axes[0] = _empty_axis(axes[0], caps)
     if feature == "anisotropic" and not (len({a[1:] for a in axes}) > 1 and len({a[0] for a in axes}) > 1):
         pick.reject()
     checks = ((needs.stride, lambda a: a[2] > 1), (needs.dilation, lambda a: a[3] > 1),

@@ -100,6 +100,8 @@ def reach_of(spec: ConvSpec) -> set:
     corners = set()
     if any(min(lo, hi) < 0 for *_, (lo, hi), _ in ax):
         corners.add("negative_padding")
+    if any(L == 0 for L, *_ in ax):
+        corners.add("zero_spatial")
     if spec.transposed and any(op > 0 and op == max(s, d) - 1 for _, _, s, d, _, _, op in ax):
         corners.add("max_output_padding")
     tags = {f"feature:{x}" for x in f} | {f"coincidence:{x}" for x in c}

@@ -28,7 +28,7 @@ import zlib
 
 from ..geometry.capabilities import Capabilities
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
-                   dtypes_for, features_for, groupings_for, satisfies)
+                   dtypes_for, features_for, groupings_for, satisfies, zero_spatial_allowed)
 from .features import PAIRS, pair_tags, reach_of
 from .profiles import Profile
 
@@ -54,6 +54,7 @@ TRIES = 12              # seeded tries per forced combination
 
 # forced builder choices that produce a tag (tags not listed force their own label)
 _CORNER_FORCE = {"negative_padding": {"asymmetric": True, "pad_lo": "min", "pad": "min"},
+                 "zero_spatial": {"zero_spatial": "max"},
                  "max_output_padding": {"output_padding": "max", "stride": "max"}}
 
 
@@ -97,6 +98,8 @@ def targets(caps: Capabilities, needs: Needs) -> list[str]:
     if "negative" in caps.padding and not needs.transposed and needs.negative_padding is not False \
             and needs.padding is not False:
         add("corner:negative_padding")
+    if zero_spatial_allowed(caps, needs):
+        add("corner:zero_spatial")
     if needs.transposed and caps.output_padding and (caps.stride or caps.dilation) \
             and needs.stride is not False:
         add("corner:max_output_padding")
@@ -188,6 +191,10 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
         if not new:
             spec, new = _try(caps, profile, needs, _force(remaining[0]), base + step + 10007,
                              {remaining[0]}, tries=4 * TRIES)
+            if not new:     # a target the forced choice cannot give under these needs (one
+                # unit-length axis beside a long one, for a shift): unforced draws may
+                spec, new = _try(caps, profile, needs, {}, base + step + 30011, {remaining[0]},
+                                 tries=8 * TRIES)
             if new:
                 new = reach_of(spec) & set(remaining)
             else:

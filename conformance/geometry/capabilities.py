@@ -58,6 +58,8 @@ class Capabilities:
     ``per_pass`` and ``constraints`` narrow the claims by pass and by named constraint
     (geometry/claims.py). ``max_elements`` caps the number of elements of any one array
     (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
+    ``zero_spatial`` claims inputs with a zero-size spatial axis (every window then lies in
+    the padding); off by default, so that no certificate covers them untested.
     """
 
     ndims: frozenset = frozenset({1, 2, 3})
@@ -70,6 +72,7 @@ class Capabilities:
     groups: bool = True
     bias: bool = True
     zero_batch: bool = True
+    zero_spatial: bool = False
     output_padding: bool = True
     deterministic: bool = True
     ieee_special: bool = False
@@ -168,6 +171,8 @@ class Capabilities:
             return "bias=True but bias=False"
         if not self.zero_batch and spec.batch == 0:
             return "batch=0 but zero_batch=False"
+        if not self.zero_spatial and 0 in spec.input_size:
+            return f"input_size={spec.input_size} has a zero-size axis but zero_spatial=False"
         if not self.output_padding and any(spec.output_padding):
             return f"output_padding={spec.output_padding} but output_padding=False"
         for kind in padding_kinds(spec):

@@ -60,7 +60,7 @@ CONSTRAINTS: dict[str, tuple[str, Callable]] = {
 }
 
 PER_PASS_FIELDS = ("ndims", "dtypes", "layouts", "padding", "stride", "dilation", "groups",
-                   "bias", "zero_batch", "output_padding", "constraints")
+                   "bias", "zero_batch", "zero_spatial", "output_padding", "constraints")
 
 
 def check_constraints(names, where: str = "constraints") -> tuple:

@@ -103,7 +103,8 @@ class KnownCauses:
         needs = inv.needs_for(adapter.capabilities)
         for cause in self.causes:
             spec = cause.spec
-            if not caps.admits(spec) or not spec_meets(needs, spec):
+            if not caps.admits(spec) or not spec_meets(needs, spec) or \
+                    (needs.applies is not None and not needs.applies(spec, caps)):
                 continue
             kind = (cause.witness or {}).get("kind")
             kind = kind if kind in needs.kinds else needs.kinds[0]

@@ -110,6 +110,8 @@ def _moves(spec: ConvSpec, batch_min: int):
             seq = list(getattr(spec, field))
             seq[i] = value
             return {field: tuple(seq)}
+        if spec.input_size[i] == 0:     # an empty axis is a corner, not a simplification:
+            yield f"input_size[{i}]", axis("input_size", 1)     # a non-empty one reads better
         for field, least in (("input_size", 1), ("kernel_size", 1), ("stride", 1),
                              ("dilation", 1), ("output_padding", 0)):
             if getattr(spec, field)[i] >= least:
@@ -155,6 +157,9 @@ def neighbours(spec: ConvSpec, caps=None, needs=None) -> list[tuple[str, ConvSpe
             continue
         if not _inside(cand, needs):
             continue
+        applies = getattr(needs, "applies", None)
+        if applies is not None and caps is not None and not applies(cand, caps):
+            continue                # a geometry the invariant would only skip
         out.append((name, cand))
     return out
 
