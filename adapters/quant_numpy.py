@@ -2,7 +2,7 @@
 
 Written apart from convwitness's reference (numerics/requant.py): the input is padded
 with its zero point (np.pad), each kernel tap is a strided slice, each group one int64
-einsum. Requantization follows one of the three declared models:
+einsum; channels-last arrays are moved to channels first and back. Requantization follows one of the three declared models:
 
 * ``quant-numpy`` -- exact: the real multiplier as an exact fraction, round half to even
   (the ONNX QLinearConv rule, from memory);
@@ -22,6 +22,8 @@ import numpy as np
 
 from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.quant import INT_RANGES, QuantCapabilities
+
+from .zoo_base import BOTH_LAYOUTS, from_cf, to_cf
 
 __all__ = ["QuantNumpy", "quant_numpy_fixed", "quant_numpy_f32", "accumulate", "per_out"]
 
@@ -115,7 +117,7 @@ class QuantNumpy:
         if model != "exact":
             self.name = {"fixed_point": "quant-numpy-fixed", "float32": "quant-numpy-f32"}[model]
         self.capabilities = Capabilities(passes=frozenset({"quantized"}),
-                                         quant=QuantCapabilities(model=model))
+                                         quant=QuantCapabilities(model=model, layouts=BOTH_LAYOUTS))
 
     def accumulate(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
                    w_scale, w_zero_point):
@@ -141,8 +143,13 @@ class QuantNumpy:
         lo, hi = clamp if clamp is not None else INT_RANGES[output]
         return np.clip(y + y_zero_point, lo, hi).astype(output)
 
-    def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
-                  w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+    def quantized(self, x, w, b, *, layout="channels_first", **kw):
+        """Channels-last arrays are moved to channels first, computed, and moved back."""
+        return from_cf(self.compute(to_cf(x, layout), to_cf(w, layout), b, **kw), layout)
+
+    def compute(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
+                w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+        """The channels-first quantized convolution."""
         acc = self.accumulate(x, w, b, stride=stride, padding=padding, dilation=dilation,
                               groups=groups, x_scale=x_scale, x_zero_point=x_zero_point,
                               w_scale=w_scale, w_zero_point=w_zero_point)

@@ -12,6 +12,11 @@ comes back. Claims, each from torch's own refusals or signature:
   counts the other way, adding it in real terms);
 * symmetric padding only (the functional takes one padding per axis); no zero batch;
   no fused clamp;
+* layouts channels first and channels last: a channels-last call's arrays are handed
+  over as permuted views, which for 2-D and 3-D are exactly torch's ``channels_last`` /
+  ``channels_last_3d`` memory formats (the quantized tensors keep them, and so does the
+  output: checked with ``is_contiguous(memory_format=...)``, torch 2.13.0+cpu); for 1-D,
+  where torch has no channels-last format, the permuted view is what a user would pass;
 * requantization model float32 (fbgemm/x86 engine: a float multiplier; recalled from
   memory, and what ``quantized.requantization`` measures).
 
@@ -49,16 +54,23 @@ class TorchQuant:
         self.capabilities = Capabilities(
             padding=frozenset({"symmetric"}), zero_batch=False, passes=frozenset({"quantized"}),
             quant=QuantCapabilities(x_dtypes=frozenset({"uint8"}), outputs=frozenset({"uint8"}),
-                                    bias=frozenset({"none", "float"}), clamp=False, model=model))
+                                    bias=frozenset({"none", "float"}), clamp=False, model=model,
+                                    layouts=frozenset({"channels_first", "channels_last"})))
 
     def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
-                  w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+                  w_scale, w_zero_point, y_scale, y_zero_point, output, clamp,
+                  layout="channels_first"):
         torch = self._torch
+        last = layout == "channels_last"
+
+        def tensor(a):          # channels last: the (N, *S, C) bytes as a permuted NC* view
+            t = torch.from_numpy(a.copy())
+            return t.movedim(-1, 1) if last else t
         if any(lo != hi for lo, hi in padding):
             raise ValueError(f"padding={padding}: torch's quantized conv takes symmetric padding only")
-        xq = torch._make_per_tensor_quantized_tensor(torch.from_numpy(x.copy()), float(x_scale),
+        xq = torch._make_per_tensor_quantized_tensor(tensor(x), float(x_scale),
                                                      int(x_zero_point))
-        wt = torch.from_numpy(w.copy())
+        wt = tensor(w)
         if len(w_scale) > 1 or len(w_zero_point) > 1:
             cout = w.shape[0]
             sc = torch.tensor(np.broadcast_to(np.asarray(w_scale, dtype=np.float64), (cout,)).copy())
@@ -71,4 +83,5 @@ class TorchQuant:
         y = fn(xq, wq, bias, stride=tuple(stride), padding=tuple(lo for lo, _ in padding),
                dilation=tuple(dilation), groups=groups, scale=float(y_scale),
                zero_point=int(y_zero_point), dtype=torch.quint8)
-        return y.int_repr().numpy().astype(np.uint8)
+        y = y.int_repr()
+        return np.ascontiguousarray((y.movedim(1, -1) if last else y).numpy()).astype(np.uint8)

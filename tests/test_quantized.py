@@ -14,6 +14,7 @@ Outside judges, named beside each check:
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -312,3 +313,74 @@ def test_failing_quantized_case_goes_through_the_standard_profile_without_intern
     verdicts = {r.id: r.verdict for r in results}
     assert "internal" not in verdicts.values(), {r.id: r.message for r in results}
     assert verdicts["quantized.padding_zero"] == "fail"
+
+
+# -- channels last ------------------------------------------------------------------------
+def _last(a):
+    return np.ascontiguousarray(np.moveaxis(a, 1, -1))
+
+
+@pytest.mark.parametrize("nd", [1, 2, 3])
+def test_channels_last_reference_is_the_channels_first_one_with_the_channel_axis_moved(nd):
+    torch = pytest.importorskip("torch")
+    # outside judge: torch.nn.functional.conv{nd}d in float64 on the channels-first
+    # differences (exact: integers far below 2^53); a channels-last x is (N, *S, C_in),
+    # w (C_out, *K, C_in/G), y (N, *S_out, C_out) (the float path's convention)
+    q = dict(x_dtype="int8", x_zero_point=-100, w_zero_point=(3, -2, 0, 7, -128, 127), bias="int32")
+    first = _spec(nd=nd, **q)
+    last = QuantSpec(first.conv.replace(layout="channels_last"), **q)
+    assert last.x_shape == _last(np.empty(first.x_shape)).shape
+    x, w = _arrays(first)
+    b = np.arange(-3, 3, dtype=np.int32) * 1000
+    got = rq.accumulate(last, _last(x), _last(w), b)
+    xd = torch.nn.functional.pad(torch.tensor(x.astype(np.float64) + 100),
+                                 [p for lo_hi in reversed(first.conv.padding) for p in lo_hi])
+    wd = torch.tensor(w.astype(np.float64) - np.asarray(first.w_zero_point).reshape((-1,) + (1,) * (nd + 1)))
+    want = getattr(torch.nn.functional, f"conv{nd}d")(xd, wd, torch.tensor(b.astype(np.float64)),
+                                                      stride=first.conv.stride, dilation=first.conv.dilation,
+                                                      groups=first.conv.groups)
+    assert np.array_equal(got, _last(want.numpy().astype(np.int64)))
+    # requantized per channel: each output channel keeps its own multiplier in either layout
+    rq_kw = dict(q, w_scale=tuple(0.01 * (i + 1) for i in range(6)), output="int8", y_scale=0.75,
+                 y_zero_point=5, clamp=(-100, 120))
+    first, last = _spec(nd=nd, **rq_kw), QuantSpec(last.conv, **rq_kw)
+    y_first, acc_first = rq.reference(first, x, w, b)
+    y_last, acc_last = rq.reference(last, _last(x), _last(w), b)
+    assert np.array_equal(y_last, _last(y_first)) and np.array_equal(acc_last, _last(acc_first))
+    for model in ("fixed_point", "float32"):
+        assert np.array_equal(rq.deviation(last, acc_last, model)[0], _last(rq.deviation(first, acc_first, model)[0]))
+    assert np.array_equal(rq.fixed_point_requantize(last, acc_last), _last(rq.fixed_point_requantize(first, acc_first)))
+    real_last, _ = rq.dequantized_reference(last, _last(x), _last(w), b)
+    assert np.allclose(real_last, _last(rq.dequantized_reference(first, x, w, b)[0]), rtol=1e-12, atol=1e-9)
+
+
+def test_channels_last_is_claimed_explicitly():
+    spec = QuantSpec(_spec().conv.replace(layout="channels_last"))
+    assert "layout=channels_last not in layouts=['channels_first']" in QuantCapabilities().refusal(spec)
+    both = QuantCapabilities(layouts=("channels_first", "channels_last"))
+    assert both.admits(spec) and QuantCapabilities.from_dict(both.to_dict()) == both
+    with pytest.raises(SpecError, match="layouts=.*unknown entries"):
+        QuantCapabilities(layouts={"nhwc"})
+
+
+def test_the_channels_last_layout_bug_is_caught_only_where_channels_last_is_claimed():
+    # Q07 reads the channels-last weights in the wrong order; its channels-first path is
+    # the correct control's, so a channels-first-only claim certifies it
+    bug = QUANT_ZOO["q_channels_last_weights_reshaped"]()
+    assert _flagged(bug, 0)
+    first_only = QUANT_ZOO["q_channels_last_weights_reshaped"]()
+    caps = first_only.capabilities
+    first_only.capabilities = caps.replace(quant=dataclasses.replace(caps.quant, layouts={"channels_first"}))
+    assert not _flagged(first_only, 0)
+
+
+def test_torch_quantized_conv_certified_in_channels_last_too():
+    pytest.importorskip("torch")
+    # torch 2.13.0+cpu takes channels_last quantized tensors (adapters/torch_quant.py); the
+    # quick run's examples cover both layouts and none fails
+    from convwitness.adapters.torch_quant import TorchQuant
+    doc, res = certify(load_adapter("torch-quant"), profile="quick", seed=0, report_dir=None,
+                       only="quantized.*")
+    assert doc["verdict"]["scope"]["layouts"] == ["channels_first", "channels_last"]
+    assert {r.verdict for r in res} <= {"pass", "not-applicable"}
+    assert TorchQuant().capabilities.quant.layouts == {"channels_first", "channels_last"}

@@ -60,10 +60,10 @@ class QNeeds:
 
 
 def _geometry_caps(caps: Capabilities) -> Capabilities:
-    """The plain claims used to draw geometries for the quantized pass (channels first,
-    not transposed, an accumulation short enough for the exact reference)."""
+    """The plain claims used to draw geometries for the quantized pass (the quantized
+    claim's layouts, not transposed, an accumulation short enough for the exact reference)."""
     return caps.replace(passes=frozenset({"forward"}), unclaimed_passes=frozenset(),
-                        dtypes=frozenset({"float64"}), layouts=frozenset({"channels_first"}),
+                        dtypes=frozenset({"float64"}), layouts=caps.quant.layouts,
                         per_pass=(), error_models=())
 
 

@@ -48,6 +48,11 @@ def _per_out(spec: QuantSpec, values, ndim_extra: int) -> np.ndarray:
     return np.asarray(spec.channel(values), dtype=np.float64).reshape((-1,) + (1,) * ndim_extra)
 
 
+def _by_channel(spec: QuantSpec, a: np.ndarray) -> np.ndarray:
+    """A view of y-like ``a`` with the output channel on axis 1 (writes reach ``a``)."""
+    return np.moveaxis(a, spec.channel_axis, 1)
+
+
 def round_half_even(num: int, den: int) -> int:
     """The integer nearest num/den (den > 0), ties to even."""
     q, r = divmod(num, den)
@@ -84,7 +89,7 @@ def accumulate(spec: QuantSpec, x, w, b=None) -> np.ndarray:
     acc = np.rint(ref.forward(g, xd, wd)).astype(np.int64)
     bq = bias_q(spec, b)
     if bq is not None:
-        acc = acc + bq.reshape((-1,) + (1,) * g.ndim)
+        acc = acc + bq.reshape(spec.channel_shape())
     return acc
 
 
@@ -98,10 +103,11 @@ def requantize_exact(spec: QuantSpec, acc: np.ndarray) -> np.ndarray:
     """clamp(round_half_even(acc * M_o) + y_zp, lo, hi), exactly (int64)."""
     lo, hi = spec.out_range()
     out = np.empty(acc.shape, dtype=np.int64)
+    acc1, out1 = _by_channel(spec, acc), _by_channel(spec, out)
     for o, m in enumerate(multipliers(spec)):
-        a = acc[:, o]
+        a = acc1[:, o]
         flat = [round_half_even(int(v) * m.numerator, m.denominator) for v in a.ravel().tolist()]
-        out[:, o] = np.asarray(flat, dtype=np.int64).reshape(a.shape) if flat else 0
+        out1[:, o] = np.asarray(flat, dtype=np.int64).reshape(a.shape) if flat else 0
     return np.clip(out + spec.y_zero_point, lo, hi)
 
 
@@ -125,7 +131,7 @@ def deviation(spec: QuantSpec, acc: np.ndarray, model: str) -> tuple[np.ndarray,
         why = ("int32 output: the exact sum, 0 units" if not spec.requantized else
                "model exact (real multiplier, round half to even, ONNX QuantizeLinear rule): 0 units")
         return np.zeros(acc.shape), why
-    m = np.asarray([float(v) for v in multipliers(spec)]).reshape((1, -1) + (1,) * spec.conv.ndim)
+    m = np.asarray([float(v) for v in multipliers(spec)]).reshape(spec.channel_shape())
     mag = np.abs(acc).astype(np.float64) * m
     if model == "fixed_point":
         shifts = [quantize_multiplier(float(v))[1] for v in multipliers(spec)]
@@ -162,7 +168,7 @@ def dequantized_reference(spec: QuantSpec, x, w, b=None) -> tuple[np.ndarray, np
     if b is not None and spec.bias != "none":
         br = (np.asarray(b, dtype=np.float64) * spec.x_scale * np.asarray(spec.channel(spec.w_scale))
               if spec.bias == "int32" else np.asarray(b, dtype=np.float64))
-        shape = (-1,) + (1,) * g.ndim
+        shape = spec.channel_shape()
         y = y + br.reshape(shape)
         mag = mag + np.abs(br).reshape(shape)
     n = (g.in_channels // g.groups) * math.prod(g.kernel_size) + 4
@@ -207,11 +213,12 @@ def fixed_point_requantize(spec: QuantSpec, acc: np.ndarray) -> np.ndarray:
     """The integer-only requantization of Jacob et al. 2018 (int64 result, saturated)."""
     lo, hi = spec.out_range()
     out = np.empty(acc.shape, dtype=np.int64)
+    acc1, out1 = _by_channel(spec, acc), _by_channel(spec, out)
     for o, m in enumerate(multipliers(spec)):
         m0, n = quantize_multiplier(float(m))
-        a = np.clip(acc[:, o], *INT_RANGES["int32"])
+        a = np.clip(acc1[:, o], *INT_RANGES["int32"])
         if n < 0:                       # M >= 1: shift left first (saturating)
             a = np.clip(a.astype(object) * (1 << -n), *INT_RANGES["int32"]).astype(np.int64)
             n = 0
-        out[:, o] = _rounding_shift(_srdhm(a, m0), n)
+        out1[:, o] = _rounding_shift(_srdhm(a, m0), n)
     return np.clip(out + spec.y_zero_point, lo, hi)
