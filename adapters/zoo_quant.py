@@ -1,10 +1,11 @@
 """The quantized planted-bug zoo: the numpy quantized convolution with one defect each.
 
 Each entry claims what a correct implementation would (the exact model, int32
-accumulator, per-channel weights, every output); ``quantized.*`` invariants must catch
+accumulator, per-channel weights, every output; the forward direction, and the transposed
+one where the defect lives there); ``quantized.*`` invariants must catch
 each one in the quick profile on every seed (tests/test_quantized.py). The defects are
 the ones integer ports ship (issue 14's list; common practice, no source), labelled
-Q01..Q07 in the order below (our own labels: BUG-CLASSES.md lists float classes only):
+Q01..Q08 in the order below (our own labels: BUG-CLASSES.md lists float classes only):
 
 * ``q_raw_zero_padding``: padding filled with a raw 0 instead of the input zero point;
 * ``q_half_up_rounding``: requantization rounds ties up (floor(v + 1/2)) where the model
@@ -20,9 +21,14 @@ Q01..Q07 in the order below (our own labels: BUG-CLASSES.md lists float classes 
   channels first but only reshapes the ``(C_out, *K, C_in/G)`` weights to
   ``(C_out, C_in/G, *K)`` (a layout-dispatch mismatch, BUG-CLASSES.md C12's kind):
   channels-first calls are right, so only channels-last cases catch it.
+* ``q_transposed_raw_zero_holes``: the transposed convolution, computed as a direct one
+  over the input with ``s - 1`` holes between neighbours (quant_numpy.as_direct), fills
+  the holes with a raw 0 instead of the input zero point (Q01's kind where only a
+  transposed convolution with stride > 1 has it).
 """
 from __future__ import annotations
 
+import dataclasses
 from fractions import Fraction
 
 import numpy as np
@@ -38,9 +44,14 @@ __all__ = ["QUANT_ZOO", "QUANT_CORRECT"]
 
 
 class _Bug(QuantNumpy):
+    #: the directions claimed: the forward defects are planted in forward code alone
+    directions = frozenset({"forward"})
+
     def __init__(self):
         super().__init__("exact")
         self.name = type(self).name
+        caps = self.capabilities
+        self.capabilities = caps.replace(quant=dataclasses.replace(caps.quant, directions=self.directions))
 
 
 class RawZeroPadding(_Bug):
@@ -151,6 +162,13 @@ class ChannelsLastWeightsReshaped(_Bug):
         return from_cf(self.compute(to_cf(x, layout), wr, b, **kw), layout)
 
 
+class TransposedRawZeroHoles(_Bug):
+    name = "q_transposed_raw_zero_holes"
+    bug_class = "Q08"
+    directions = frozenset({"forward", "transposed"})
+    hole = 0            # the stride's inserted holes hold a raw 0, not the input zero point
+
+
 def _bias_int(b, x_scale, ws):
     from .quant_numpy import _bias_int as bias_int
     return bias_int(b, x_scale, ws, len(ws))
@@ -162,7 +180,7 @@ def _with_bias(adapter, acc, b, x_scale, w_scale, cout):
 
 
 _BUGS = (RawZeroPadding, HalfUpRounding, WrappingOutput, PerInputChannelScales,
-         ZeroPointAfterMultiply, Int16Accumulator, ChannelsLastWeightsReshaped)
+         ZeroPointAfterMultiply, Int16Accumulator, ChannelsLastWeightsReshaped, TransposedRawZeroHoles)
 QUANT_ZOO: dict[str, type] = {cls.name: cls for cls in _BUGS}
 QUANT_CORRECT: dict[str, object] = {
     "quant-numpy": QuantNumpy,

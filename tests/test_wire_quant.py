@@ -183,3 +183,34 @@ def test_served_model_controls_keep_their_model(name):
         assert served.capabilities.quant.model == load_adapter(name).capabilities.quant.model == "fixed_point"
     finally:
         served.target.close()
+
+
+def test_a_transposed_channels_last_quantized_call_travels():
+    # the transposed direction and the channels-last layout over the wire: the served
+    # control answers what the exact reference says, and the client sizes the reply
+    # region for exactly the y that comes back
+    from convwitness.boundary.contract import quant_kwargs
+    from convwitness.boundary.wire.messages import output_bytes, params, quant_params
+    conv = ConvSpec(batch=2, in_channels=4, out_channels=6, input_size=(3, 4), kernel_size=(2, 3),
+                    stride=(2, 1), padding=((1, 1), (0, 2)), output_padding=(1, 0), groups=2,
+                    transposed=True, bias=True, dtype="float64", layout="channels_last")
+    spec = QuantSpec(conv, x_dtype="int8", x_zero_point=-7, w_scale=tuple(0.01 * (i + 1) for i in range(6)),
+                     w_zero_point=(1, 2, 3, 4, 5, 6), bias="float", output="int8", y_scale=0.3,
+                     y_zero_point=4, clamp=(-50, 100))
+    rng = np.random.default_rng(1)
+    x = rng.integers(-128, 128, spec.x_shape).astype(np.int8)
+    w = rng.integers(-128, 128, spec.w_shape).astype(np.int8)
+    b = rng.standard_normal(6).astype(np.float32)
+    served = load_adapter(f"{SERVE} quant-numpy")
+    try:
+        y = served.quantized(spec, x, w, b)
+    finally:
+        served.target.close()
+    assert y.shape == spec.y_shape == (2, 5, 4, 6)
+    assert np.array_equal(y.astype(np.int64), rq.reference(spec, x, w, b)[0])
+    kw = quant_kwargs(spec)
+    assert kw["transposed"] is True and kw["output_padding"] == (1, 0)
+    geometry = params(kw["stride"], kw["padding"], kw["dilation"], kw["groups"], kw["layout"], kw["output_padding"])
+    p = quant_params(geometry, kw, b, transposed=True)
+    assert p["quant"]["transposed"] is True and p["output_padding"] == [1, 0]
+    assert output_bytes("quantized", {"x": x, "w": w}, p) == y.nbytes + 64

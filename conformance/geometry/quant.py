@@ -29,7 +29,7 @@ from ..errors import SpecError
 from .spec import LAYOUTS, ConvSpec
 
 __all__ = ["QuantSpec", "QuantCapabilities", "INT_RANGES", "REQUANT_MODELS", "BIAS_KINDS",
-           "OUTPUT_DTYPES", "worst_sum"]
+           "OUTPUT_DTYPES", "DIRECTIONS", "worst_sum"]
 
 #: the integer formats and their ranges (two's complement / unsigned, common practice)
 INT_RANGES = {"int8": (-128, 127), "uint8": (0, 255), "int16": (-32768, 32767),
@@ -38,6 +38,10 @@ X_DTYPES = ("int8", "uint8")
 W_DTYPES = ("int8",)
 OUTPUT_DTYPES = ("int32", "int8", "uint8")
 BIAS_KINDS = ("none", "int32", "float")
+#: the directions of a quantized convolution: forward, and transposed (the geometry's
+#: ``transposed=True``: w ``(C_in, C_out/G, *K)``, output channel ``o`` of group ``g`` is
+#: ``w[:, o - g*C_out/G]`` of that group's input channels)
+DIRECTIONS = ("forward", "transposed")
 #: the requantization models (numerics/requant.py derives each one's allowed deviation)
 REQUANT_MODELS = ("exact", "fixed_point", "float32")
 
@@ -78,8 +82,6 @@ class QuantSpec:
         c = self.conv
         if not isinstance(c, ConvSpec):
             _fail(f"conv={c!r} must be a ConvSpec (the geometry)")
-        if c.transposed:
-            _fail("transposed quantized convolution is not modelled yet; use transposed=False")
         if self.x_dtype not in X_DTYPES:
             _fail(f"x_dtype={self.x_dtype!r}; expected one of {X_DTYPES}")
         if self.w_dtype not in W_DTYPES:
@@ -234,13 +236,15 @@ class QuantCapabilities:
     #: the layouts of x, w and y handled (geometry/spec.py LAYOUTS; channels first alone
     #: unless the kernel takes channels-last arrays)
     layouts: frozenset = frozenset({"channels_first"})
+    #: forward and/or transposed quantized convolution (DIRECTIONS)
+    directions: frozenset = frozenset({"forward"})
     #: a requantized output has the activations' format (uint8 -> uint8, int8 -> int8)
     output_like_input: bool = False
 
     def __post_init__(self):
         s = object.__setattr__
         for name, allowed in (("x_dtypes", X_DTYPES), ("outputs", OUTPUT_DTYPES), ("bias", BIAS_KINDS),
-                              ("layouts", LAYOUTS)):
+                              ("layouts", LAYOUTS), ("directions", DIRECTIONS)):
             v = getattr(self, name)
             items = frozenset((v,) if isinstance(v, str) else v)
             bad = sorted(items - set(allowed))
@@ -257,6 +261,9 @@ class QuantCapabilities:
         """Why ``spec`` is outside the quantized claim, or None."""
         if spec.x_dtype not in self.x_dtypes:
             return f"x_dtype={spec.x_dtype} not in x_dtypes={sorted(self.x_dtypes)}"
+        direction = "transposed" if spec.conv.transposed else "forward"
+        if direction not in self.directions:
+            return f"a {direction} convolution but directions={sorted(self.directions)}"
         if spec.conv.layout not in self.layouts:
             return f"layout={spec.conv.layout} not in layouts={sorted(self.layouts)}"
         if spec.output not in self.outputs:
@@ -293,4 +300,5 @@ class QuantCapabilities:
     def summary(self) -> str:
         return (f"quantized x={','.join(sorted(self.x_dtypes))} w=int8 out={','.join(sorted(self.outputs))} "
                 f"model={self.model}{' per-channel' if self.per_channel else ''}"
-                + ("" if self.layouts == {"channels_first"} else f" layouts={','.join(sorted(self.layouts))}"))
+                + ("" if self.layouts == {"channels_first"} else f" layouts={','.join(sorted(self.layouts))}")
+                + ("" if self.directions == {"forward"} else f" directions={','.join(sorted(self.directions))}"))

@@ -31,7 +31,7 @@ from ..geometry.quant import INT_RANGES, QuantSpec, worst_sum
 from .gamma import U64, gamma
 from . import reference as ref
 
-__all__ = ["accumulate", "bias_q", "multipliers", "requantize_exact", "reference", "deviation",
+__all__ = ["accumulate", "per_weight", "bias_q", "multipliers", "requantize_exact", "reference", "deviation",
            "dequantized_reference", "quantize_multiplier", "fixed_point_requantize",
            "round_half_even", "U32"]
 
@@ -43,9 +43,19 @@ def _geometry(spec: QuantSpec):
     return spec.conv.replace(dtype="float64", bias=False)
 
 
-def _per_out(spec: QuantSpec, values, ndim_extra: int) -> np.ndarray:
-    """A per-tensor or per-output-channel tuple shaped to broadcast over axis 0 (w) or 1 (y)."""
-    return np.asarray(spec.channel(values), dtype=np.float64).reshape((-1,) + (1,) * ndim_extra)
+def per_weight(spec: QuantSpec, values) -> np.ndarray:
+    """A per-tensor or per-output-channel tuple shaped to broadcast over w: along axis 0
+    (C_out) forward; for a transposed w ``(C_in, C_out/G, *K)`` entry ``[c, j]`` holds
+    output channel ``g*C_out/G + j`` of the group ``g = c // (C_in/G)`` of input channel c."""
+    v = np.asarray(spec.channel(values), dtype=np.float64)
+    c, nd = spec.conv, spec.conv.ndim
+    if not c.transposed:
+        return v.reshape((-1,) + (1,) * (nd + 1))
+    opg, ipg = c.out_channels // c.groups, c.in_channels // c.groups
+    table = v.reshape(c.groups, opg)[np.arange(c.in_channels) // ipg]        # (C_in, C_out/G)
+    if c.layout == "channels_last":
+        return table.reshape((c.in_channels,) + (1,) * nd + (opg,))
+    return table.reshape((c.in_channels, opg) + (1,) * nd)
 
 
 def _by_channel(spec: QuantSpec, a: np.ndarray) -> np.ndarray:
@@ -85,7 +95,7 @@ def accumulate(spec: QuantSpec, x, w, b=None) -> np.ndarray:
                         "holds sums below 2^53 only; use a shorter accumulation")
     g = _geometry(spec)
     xd = np.asarray(x, dtype=np.float64) - float(spec.x_zero_point)
-    wd = np.asarray(w, dtype=np.float64) - _per_out(spec, spec.w_zero_point, g.ndim + 1)
+    wd = np.asarray(w, dtype=np.float64) - per_weight(spec, spec.w_zero_point)
     acc = np.rint(ref.forward(g, xd, wd)).astype(np.int64)
     bq = bias_q(spec, b)
     if bq is not None:
@@ -161,8 +171,7 @@ def dequantized_reference(spec: QuantSpec, x, w, b=None) -> tuple[np.ndarray, np
     in output units): the float64 convolution of the dequantized inputs, in output units."""
     g = _geometry(spec)
     xr = spec.x_scale * (np.asarray(x, dtype=np.float64) - spec.x_zero_point)
-    ws = _per_out(spec, spec.w_scale, g.ndim + 1)
-    wr = ws * (np.asarray(w, dtype=np.float64) - _per_out(spec, spec.w_zero_point, g.ndim + 1))
+    wr = per_weight(spec, spec.w_scale) * (np.asarray(w, dtype=np.float64) - per_weight(spec, spec.w_zero_point))
     y = ref.forward(g, xr, wr)
     mag = ref.forward_magnitude(g, xr, wr)
     if b is not None and spec.bias != "none":

@@ -336,8 +336,9 @@ class ExecAdapter:
         return self._call("transposed", [("x", x), ("w", w), ("b", b)], p)["y"]
 
     def _quantized(self, x, w, b=None, *, stride, padding, dilation, groups, layout="channels_first",
-                   output_padding=None, **quant):
+                   output_padding=None, transposed=False, **quant):
         """The quantized pass (offered as ``quantized`` when the hello claims it): the
         keywords of boundary/contract.py ``quant_kwargs`` travel in ``params["quant"]``."""
-        p = quant_params(_params(stride, padding, dilation, groups, layout, output_padding), quant, b)
+        p = quant_params(_params(stride, padding, dilation, groups, layout, output_padding), quant, b,
+                         transposed)
         return self._call("quantized", [("x", x), ("w", w), ("b", b)], p)["y"]

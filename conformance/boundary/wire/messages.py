@@ -100,10 +100,12 @@ def params(stride, padding, dilation, groups, layout, output_padding) -> dict:
             "output_padding": [int(o) for o in (output_padding or (0,) * nd)]}
 
 
-def quant_params(geometry: dict, kw: dict, b) -> dict:
+def quant_params(geometry: dict, kw: dict, b, transposed: bool = False) -> dict:
     """A quantized call's params: the geometry's, plus ``quant`` (QUANT_FIELDS as JSON:
-    lists for w_scale, w_zero_point and clamp; null for y_scale and clamp where absent)
-    and ``bias``, the bias kind (none, int32 or float: the kind b's dtype says)."""
+    lists for w_scale, w_zero_point and clamp; null for y_scale and clamp where absent),
+    ``bias``, the bias kind (none, int32 or float: the kind b's dtype says), and
+    ``transposed`` (true for a transposed convolution; the geometry then carries its
+    output_padding)."""
     q = {}
     for k in QUANT_FIELDS:
         v = kw[k]
@@ -117,6 +119,7 @@ def quant_params(geometry: dict, kw: dict, b) -> dict:
             v = int(v)
         q[k] = v
     q["bias"] = "none" if b is None else ("int32" if np.asarray(b).dtype == np.int32 else "float")
+    q["transposed"] = bool(transposed)
     return dict(geometry, quant=q)
 
 
@@ -127,16 +130,17 @@ def output_bytes(method: str, arrays: dict, p: dict) -> int:
         if method == "backward":
             return sum(a.nbytes + 64 for a in arrays.values())
         cl = p["layout"] == "channels_last"
+        tr = method == "transposed" or (method == "quantized" and p["quant"].get("transposed"))
         size, kernel = (x.shape[1:-1], w.shape[1:-1]) if cl else (x.shape[2:], w.shape[2:])
         out = []
         for i, (L, k) in enumerate(zip(size, kernel)):
             s, d, (lo, hi) = p["stride"][i], p["dilation"][i], p["padding"][i]
             e = d * (k - 1) + 1
-            if method != "transposed":
+            if not tr:
                 out.append((L + lo + hi - e) // s + 1)
             else:
                 out.append(s * (L - 1) + e + p["output_padding"][i] - lo - hi)
-        if method != "transposed":
+        if not tr:
             channels = w.shape[0]
         else:
             channels = (w.shape[-1] if cl else w.shape[1]) * p["groups"]

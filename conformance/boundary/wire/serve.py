@@ -46,10 +46,13 @@ def _kwargs(params: dict, method: str) -> dict:
           "dilation": tuple(params["dilation"]), "groups": int(params["groups"])}
     if params.get("layout", "channels_first") != "channels_first":
         kw["layout"] = params["layout"]
-    if method == "transposed":
+    quant = params.get("quant") if method == "quantized" else None
+    if method == "transposed" or (isinstance(quant, dict) and quant.get("transposed")):
         kw["output_padding"] = tuple(params.get("output_padding") or (0,) * len(kw["stride"]))
     if method == "quantized":
-        kw.update(_quant_kwargs(params.get("quant")))
+        kw.update(_quant_kwargs(quant))
+        if quant.get("transposed"):
+            kw["transposed"] = True
     return kw
 
 
