@@ -27,6 +27,8 @@ BUILTINS: dict[str, str] = {
     "oxtervane-int8": "convwitness.adapters.oxtervane_int8:OxtervaneInt8",
     "oxtervane-int8-padbug": "convwitness.adapters.oxtervane_int8:OxtervaneInt8PadBug",
     "torch-quant": "convwitness.adapters.torch_quant:TorchQuant",
+    "torch-quant-transposed": "convwitness.adapters.torch_quant:TorchQuantTransposed",
+    "torch-quant-transposed-fbgemm": "convwitness.adapters.torch_quant:transposed_fbgemm",
     "onnxruntime-quant": "convwitness.adapters.onnxruntime_quant:QuantOnnxRuntime",
     "onnxruntime-convinteger": "convwitness.adapters.onnxruntime_quant:conv_integer",
     "onnxruntime-qlinearconv": "convwitness.adapters.onnxruntime_quant:qlinear_conv",

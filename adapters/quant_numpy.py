@@ -2,7 +2,8 @@
 
 Written apart from convwitness's reference (numerics/requant.py): the input is padded
 with its zero point (np.pad), each kernel tap is a strided slice, each group one int64
-einsum. Requantization follows one of the three declared models:
+einsum; channels-last arrays are moved to channels first and back; a transposed
+convolution becomes its equivalent direct one (``as_direct``). Requantization follows one of the three declared models:
 
 * ``quant-numpy`` -- exact: the real multiplier as an exact fraction, round half to even
   (the ONNX QLinearConv rule, from memory);
@@ -23,7 +24,9 @@ import numpy as np
 from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.quant import INT_RANGES, QuantCapabilities
 
-__all__ = ["QuantNumpy", "quant_numpy_fixed", "quant_numpy_f32", "accumulate", "per_out"]
+from .zoo_base import BOTH_LAYOUTS, from_cf, to_cf
+
+__all__ = ["QuantNumpy", "quant_numpy_fixed", "quant_numpy_f32", "accumulate", "per_out", "as_direct"]
 
 
 def per_out(values, cout: int) -> np.ndarray:
@@ -54,6 +57,30 @@ def accumulate(x, w, *, stride, padding, dilation, groups, x_zero_point, w_zero_
             part = np.einsum("nc...,oc->no...", xs, ws).astype(acc_dtype)
             y[:, g * opg:(g + 1) * opg] = (y[:, g * opg:(g + 1) * opg] + part).astype(acc_dtype)
     return y
+
+
+def as_direct(x, w, stride, padding, dilation, groups, output_padding, hole):
+    """A transposed convolution as a direct one (common practice, no source; the
+    relation of Dumoulin & Visin 2016, Sec. 4): x with s - 1 holes between neighbours
+    (holding ``hole``), padded by d(k-1) - p_lo before and d(k-1) - p_hi + output_padding
+    after (cropped where negative), and the weights regrouped to (C_out, C_in/G, *K) and
+    flipped. Returns (x', w', padding')."""
+    nd = x.ndim - 2
+    cin, opg, kernel = w.shape[0], w.shape[1], w.shape[2:]
+    ipg = cin // groups
+    wc = np.swapaxes(w.reshape((groups, ipg, opg) + kernel), 1, 2).reshape((groups * opg, ipg) + kernel)
+    wc = np.flip(wc, axis=tuple(range(2, 2 + nd)))
+    up = np.full(x.shape[:2] + tuple((n - 1) * s + 1 if n else 0 for n, s in zip(x.shape[2:], stride)),
+                 hole, dtype=np.int64)
+    up[(slice(None), slice(None)) + tuple(slice(None, None, s) for s in stride)] = x
+    pads = []
+    for i in range(nd):
+        e = dilation[i] * (kernel[i] - 1)
+        lo, hi = e - padding[i][0], e - padding[i][1] + output_padding[i]
+        crop = slice(max(-lo, 0), up.shape[2 + i] - max(-hi, 0))
+        up = up[(slice(None),) * (2 + i) + (crop,)]
+        pads.append((max(lo, 0), max(hi, 0)))
+    return up, np.ascontiguousarray(wc), tuple(pads)
 
 
 def _bias_int(b, x_scale, w_scale, cout):
@@ -114,8 +141,8 @@ class QuantNumpy:
         self.model = model
         if model != "exact":
             self.name = {"fixed_point": "quant-numpy-fixed", "float32": "quant-numpy-f32"}[model]
-        self.capabilities = Capabilities(passes=frozenset({"quantized"}),
-                                         quant=QuantCapabilities(model=model))
+        self.capabilities = Capabilities(passes=frozenset({"quantized"}), quant=QuantCapabilities(
+            model=model, layouts=BOTH_LAYOUTS, directions=frozenset({"forward", "transposed"})))
 
     def accumulate(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
                    w_scale, w_zero_point):
@@ -141,8 +168,24 @@ class QuantNumpy:
         lo, hi = clamp if clamp is not None else INT_RANGES[output]
         return np.clip(y + y_zero_point, lo, hi).astype(output)
 
-    def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
-                  w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+    #: what a transposed convolution's inserted holes hold: None is the input zero point
+    #: (real 0); the zoo plants a raw 0 through it
+    hole = None
+
+    def quantized(self, x, w, b, *, layout="channels_first", transposed=False, output_padding=None, **kw):
+        """Channels-last arrays are moved to channels first, computed, and moved back. A
+        transposed convolution is computed as its equivalent direct one (as_direct)."""
+        x, w = to_cf(x, layout), to_cf(w, layout)
+        if transposed:
+            hole = kw["x_zero_point"] if self.hole is None else self.hole
+            x, w, kw["padding"] = as_direct(x, w, kw["stride"], kw["padding"], kw["dilation"],
+                                            kw["groups"], output_padding, hole)
+            kw["stride"] = (1,) * (x.ndim - 2)
+        return from_cf(self.compute(x, w, b, **kw), layout)
+
+    def compute(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
+                w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+        """The channels-first quantized convolution."""
         acc = self.accumulate(x, w, b, stride=stride, padding=padding, dilation=dilation,
                               groups=groups, x_scale=x_scale, x_zero_point=x_zero_point,
                               w_scale=w_scale, w_zero_point=w_zero_point)

@@ -1,10 +1,11 @@
 """The quantized planted-bug zoo: the numpy quantized convolution with one defect each.
 
 Each entry claims what a correct implementation would (the exact model, int32
-accumulator, per-channel weights, every output); ``quantized.*`` invariants must catch
+accumulator, per-channel weights, every output; the forward direction, and the transposed
+one where the defect lives there); ``quantized.*`` invariants must catch
 each one in the quick profile on every seed (tests/test_quantized.py). The defects are
 the ones integer ports ship (issue 14's list; common practice, no source), labelled
-Q01..Q06 in the order below (our own labels: BUG-CLASSES.md lists float classes only):
+Q01..Q08 in the order below (our own labels: BUG-CLASSES.md lists float classes only):
 
 * ``q_raw_zero_padding``: padding filled with a raw 0 instead of the input zero point;
 * ``q_half_up_rounding``: requantization rounds ties up (floor(v + 1/2)) where the model
@@ -16,9 +17,18 @@ Q01..Q06 in the order below (our own labels: BUG-CLASSES.md lists float classes 
 * ``q_zero_point_after_multiply``: the product is x*w - x_zp*w_zp, the zero points taken
   off after the multiply instead of (x - x_zp)(w - w_zp);
 * ``q_int16_accumulator``: the sum is kept in int16 and wraps on long or large sums.
+* ``q_channels_last_weights_reshaped``: the channels-last path moves the activations to
+  channels first but only reshapes the ``(C_out, *K, C_in/G)`` weights to
+  ``(C_out, C_in/G, *K)`` (a layout-dispatch mismatch, BUG-CLASSES.md C12's kind):
+  channels-first calls are right, so only channels-last cases catch it.
+* ``q_transposed_raw_zero_holes``: the transposed convolution, computed as a direct one
+  over the input with ``s - 1`` holes between neighbours (quant_numpy.as_direct), fills
+  the holes with a raw 0 instead of the input zero point (Q01's kind where only a
+  transposed convolution with stride > 1 has it).
 """
 from __future__ import annotations
 
+import dataclasses
 from fractions import Fraction
 
 import numpy as np
@@ -28,14 +38,20 @@ from convwitness.geometry.spec import ConvSpec
 from convwitness.numerics import reference as ref
 
 from .quant_numpy import QuantNumpy, accumulate, per_out
+from .zoo_base import from_cf, to_cf
 
 __all__ = ["QUANT_ZOO", "QUANT_CORRECT"]
 
 
 class _Bug(QuantNumpy):
+    #: the directions claimed: the forward defects are planted in forward code alone
+    directions = frozenset({"forward"})
+
     def __init__(self):
         super().__init__("exact")
         self.name = type(self).name
+        caps = self.capabilities
+        self.capabilities = caps.replace(quant=dataclasses.replace(caps.quant, directions=self.directions))
 
 
 class RawZeroPadding(_Bug):
@@ -81,8 +97,8 @@ class PerInputChannelScales(_Bug):
     name = "q_per_input_channel_scales"
     bug_class = "Q04"
 
-    def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
-                  w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
+    def compute(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
+                w_scale, w_zero_point, y_scale, y_zero_point, output, clamp):
         cout, cpg = w.shape[0], w.shape[1]
         ws, wz = per_out(w_scale, cout), per_out(w_zero_point, cout)
         # the per-channel arrays read with the (global) input-channel index of the tap
@@ -133,6 +149,26 @@ class Int16Accumulator(_Bug):
         return _with_bias(self, acc, b, x_scale, w_scale, w.shape[0])
 
 
+class ChannelsLastWeightsReshaped(_Bug):
+    name = "q_channels_last_weights_reshaped"
+    bug_class = "Q07"
+
+    def quantized(self, x, w, b, *, layout="channels_first", **kw):
+        if layout != "channels_last":
+            return super().quantized(x, w, b, **kw)
+        # the activations are moved to channels first, but the (C_out, *K, C_in/G) weights
+        # are only reshaped to (C_out, C_in/G, *K): the same bytes read in the wrong order
+        wr = w.reshape((w.shape[0], w.shape[-1]) + w.shape[1:-1])
+        return from_cf(self.compute(to_cf(x, layout), wr, b, **kw), layout)
+
+
+class TransposedRawZeroHoles(_Bug):
+    name = "q_transposed_raw_zero_holes"
+    bug_class = "Q08"
+    directions = frozenset({"forward", "transposed"})
+    hole = 0            # the stride's inserted holes hold a raw 0, not the input zero point
+
+
 def _bias_int(b, x_scale, ws):
     from .quant_numpy import _bias_int as bias_int
     return bias_int(b, x_scale, ws, len(ws))
@@ -144,7 +180,7 @@ def _with_bias(adapter, acc, b, x_scale, w_scale, cout):
 
 
 _BUGS = (RawZeroPadding, HalfUpRounding, WrappingOutput, PerInputChannelScales,
-         ZeroPointAfterMultiply, Int16Accumulator)
+         ZeroPointAfterMultiply, Int16Accumulator, ChannelsLastWeightsReshaped, TransposedRawZeroHoles)
 QUANT_ZOO: dict[str, type] = {cls.name: cls for cls in _BUGS}
 QUANT_CORRECT: dict[str, object] = {
     "quant-numpy": QuantNumpy,

@@ -185,6 +185,28 @@ FINDINGS = (
         except Exception as exc:
             print("BUG", str(exc).splitlines()[0].split("Status Message:")[-1].strip()[:140])
         """, seen="onnxruntime 1.32.0 CPU, AMD EPYC with AVX-512"),
+    Finding(
+        "torch.quantized_conv_transpose_x86", "torch",
+        "quantized conv_transpose1d (uint8 x, int8 w, C_in=2 -> C_out=3, k=3, padding 1, "
+        "output_padding 0) under the default quantized engine x86 returns values up to 70 "
+        "output units from the transposed convolution; fbgemm and qnnpack are exact "
+        "(convwitness: torch-quant-transposed, scripts/probe_quant_transposed.py)",
+        """
+        import numpy as np, torch, warnings
+        warnings.filterwarnings("ignore")
+        r = np.random.default_rng(0)
+        x = torch.from_numpy(r.integers(0, 20, (1, 2, 2)).astype(np.uint8))
+        w = torch.from_numpy(r.integers(-5, 6, (2, 3, 3)).astype(np.int8))
+        xq = torch._make_per_tensor_quantized_tensor(x, 1.0, 0)
+        wq = torch._make_per_tensor_quantized_tensor(w, 1.0, 0)
+        torch.backends.quantized.engine = "x86"
+        packed = torch.ops.quantized.conv_transpose1d_prepack(wq, None, [1], [1], [0], [1], 1)
+        y = torch.ops.quantized.conv_transpose1d(xq, packed, 1.0, 128).int_repr().double()
+        exact = torch.nn.functional.conv_transpose1d(x.double(), w.double(), padding=1) + 128
+        off = (y - exact.clamp(0, 255)).abs().max().item()
+        print("BUG" if off > 1 else "OK", f"largest |y - exact| {off:g} output units")
+        """, seen="torch 2.13.0+cpu, AMD EPYC with AVX-512, 1 and 2 threads: BUG (70 units); "
+                  "engines fbgemm and qnnpack: exact"),
 )
 
 

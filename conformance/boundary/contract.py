@@ -43,8 +43,12 @@ def call_kwargs(spec: ConvSpec, transposed: bool = False) -> dict:
 def quant_kwargs(spec) -> dict:
     """The keyword arguments of ``quantized(x, w, b, ...)`` for a QuantSpec: the geometry's,
     then the quantization parameters (w_scale and w_zero_point as tuples of 1 or C_out
-    entries; y_scale None and clamp None for int32 output; the bias kind is b's dtype)."""
-    kw = call_kwargs(spec.conv)
+    entries; y_scale None and clamp None for int32 output; the bias kind is b's dtype). A
+    transposed one adds ``output_padding`` and ``transposed=True`` (only then, so that a
+    forward-only adapter's signature need not know them)."""
+    kw = call_kwargs(spec.conv, transposed=spec.conv.transposed)
+    if spec.conv.transposed:
+        kw["transposed"] = True
     kw.update(x_scale=spec.x_scale, x_zero_point=spec.x_zero_point, w_scale=tuple(spec.w_scale),
               w_zero_point=tuple(spec.w_zero_point), y_scale=spec.y_scale,
               y_zero_point=spec.y_zero_point, output=spec.output, clamp=spec.clamp)

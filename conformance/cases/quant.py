@@ -19,7 +19,7 @@ Geometries come from the float path's strategies (every feature and coincidence 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from hypothesis import assume, strategies as st
@@ -27,6 +27,7 @@ from hypothesis import assume, strategies as st
 from ..errors import SpecError
 from ..geometry.capabilities import Capabilities
 from ..geometry.quant import INT_RANGES, QuantSpec, worst_sum
+from ..numerics.requant import per_weight
 from .case import QCase, load_qcase  # noqa: F401  (public here too)
 from .profiles import get_profile
 from .strategies import Needs, specs
@@ -59,11 +60,12 @@ class QNeeds:
     clamp: bool | None = None
 
 
-def _geometry_caps(caps: Capabilities) -> Capabilities:
-    """The plain claims used to draw geometries for the quantized pass (channels first,
-    not transposed, an accumulation short enough for the exact reference)."""
-    return caps.replace(passes=frozenset({"forward"}), unclaimed_passes=frozenset(),
-                        dtypes=frozenset({"float64"}), layouts=frozenset({"channels_first"}),
+def _geometry_caps(caps: Capabilities, direction: str = "forward") -> Capabilities:
+    """The plain claims used to draw geometries for the quantized pass (the quantized
+    claim's layouts, the direction drawn, an accumulation short enough for the exact
+    reference)."""
+    return caps.replace(passes=frozenset({direction}), unclaimed_passes=frozenset(),
+                        dtypes=frozenset({"float64"}), layouts=caps.quant.layouts,
                         per_pass=(), error_models=())
 
 
@@ -89,7 +91,9 @@ def _zero_point(draw, dtype: str, mode: str, label: str) -> int:
 @st.composite
 def _qspec(draw, caps: Capabilities, profile, qn: QNeeds):
     qc = caps.quant
-    conv = draw(specs(_geometry_caps(caps), profile, qn.geometry), label="geometry")
+    direction = draw(st.sampled_from(sorted(qc.directions)), label="direction")
+    needs = replace(qn.geometry, transposed=direction == "transposed")
+    conv = draw(specs(_geometry_caps(caps, direction), profile, needs), label="geometry")
     x_dtype = draw(st.sampled_from(sorted(qc.x_dtypes)), label="x_dtype")
     outputs = sorted(qc.outputs if qn.outputs is None else set(qc.outputs) & set(qn.outputs))
     assume(outputs)
@@ -159,7 +163,7 @@ def fill(spec: QuantSpec, kind: str, seed: int) -> dict:
     xlo, xhi = INT_RANGES[spec.x_dtype]
     wlo, whi = INT_RANGES[spec.w_dtype]
     xs, ws = spec.x_shape, spec.w_shape
-    wzp = np.asarray(spec.channel(spec.w_zero_point)).reshape((-1,) + (1,) * (len(ws) - 1))
+    wzp = per_weight(spec, spec.w_zero_point).astype(np.int64)
     if kind == "extreme":
         x = rng.choice([xlo, xhi], xs)
         w = rng.choice([wlo, whi], ws)
@@ -169,7 +173,7 @@ def fill(spec: QuantSpec, kind: str, seed: int) -> dict:
         x = np.full(xs, far_x)
         up = (whi - wzp) >= (wzp - wlo)
         w_far = np.where(up, whi, wlo)
-        flip = rng.random((ws[0],) + (1,) * (len(ws) - 1)) < 0.5     # some channels negative
+        flip = rng.random(wzp.shape) < 0.5     # some output channels negative
         w = np.where(flip, np.where(up, wlo, whi), w_far) * np.ones(ws, dtype=np.int64)
     elif kind == "near_zero_point":
         x = np.clip(spec.x_zero_point + rng.integers(-3, 4, xs), xlo, xhi)

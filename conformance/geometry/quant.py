@@ -4,7 +4,9 @@ A quantized convolution is a float convolution's geometry (a :class:`ConvSpec`, 
 ``dtype`` is ignored: the geometry only) plus the integer formats and the affine
 quantization parameters of each tensor, real = scale * (q - zero_point):
 
-* activations ``x``: ``int8`` or ``uint8``, one scale and one zero point;
+* activations ``x``: ``int8`` or ``uint8``, one scale and one zero point; channels first
+  ``(N, C_in, *S)`` or, with the geometry's ``layout="channels_last"``, ``(N, *S, C_in)``
+  (w then ``(C_out, *K, C_in/G)`` and y ``(N, *S_out, C_out)``, as on the float path);
 * weights ``w``: ``int8``, one scale and zero point per tensor, or one per OUTPUT
   channel (``len(w_scale) == C_out``; with groups, output channel ``o`` belongs to
   group ``o // (C_out/G)``);
@@ -24,10 +26,10 @@ import math
 from dataclasses import dataclass, fields, replace
 
 from ..errors import SpecError
-from .spec import ConvSpec
+from .spec import LAYOUTS, ConvSpec
 
 __all__ = ["QuantSpec", "QuantCapabilities", "INT_RANGES", "REQUANT_MODELS", "BIAS_KINDS",
-           "OUTPUT_DTYPES", "worst_sum"]
+           "OUTPUT_DTYPES", "DIRECTIONS", "worst_sum"]
 
 #: the integer formats and their ranges (two's complement / unsigned, common practice)
 INT_RANGES = {"int8": (-128, 127), "uint8": (0, 255), "int16": (-32768, 32767),
@@ -36,6 +38,10 @@ X_DTYPES = ("int8", "uint8")
 W_DTYPES = ("int8",)
 OUTPUT_DTYPES = ("int32", "int8", "uint8")
 BIAS_KINDS = ("none", "int32", "float")
+#: the directions of a quantized convolution: forward, and transposed (the geometry's
+#: ``transposed=True``: w ``(C_in, C_out/G, *K)``, output channel ``o`` of group ``g`` is
+#: ``w[:, o - g*C_out/G]`` of that group's input channels)
+DIRECTIONS = ("forward", "transposed")
 #: the requantization models (numerics/requant.py derives each one's allowed deviation)
 REQUANT_MODELS = ("exact", "fixed_point", "float32")
 
@@ -76,10 +82,6 @@ class QuantSpec:
         c = self.conv
         if not isinstance(c, ConvSpec):
             _fail(f"conv={c!r} must be a ConvSpec (the geometry)")
-        if c.transposed:
-            _fail("transposed quantized convolution is not modelled yet; use transposed=False")
-        if c.layout != "channels_first":
-            _fail(f"layout={c.layout!r}: quantized cases are channels_first only")
         if self.x_dtype not in X_DTYPES:
             _fail(f"x_dtype={self.x_dtype!r}; expected one of {X_DTYPES}")
         if self.w_dtype not in W_DTYPES:
@@ -142,6 +144,16 @@ class QuantSpec:
     @property
     def requantized(self) -> bool:
         return self.output != "int32"
+
+    @property
+    def channel_axis(self) -> int:
+        """The output channel axis of x and y: 1 (channels first) or -1 (channels last)."""
+        return -1 if self.conv.layout == "channels_last" else 1
+
+    def channel_shape(self) -> tuple:
+        """The shape that broadcasts one value per output channel over y."""
+        nd = self.conv.ndim
+        return (1,) * (nd + 1) + (-1,) if self.channel_axis == -1 else (1, -1) + (1,) * nd
 
     def channel(self, values: tuple) -> list:
         """A per-tensor or per-output-channel tuple as one value per output channel."""
@@ -221,12 +233,18 @@ class QuantCapabilities:
     clamp: bool = True
     model: str = "exact"
     max_sum: int = 2 ** 31 - 1
+    #: the layouts of x, w and y handled (geometry/spec.py LAYOUTS; channels first alone
+    #: unless the kernel takes channels-last arrays)
+    layouts: frozenset = frozenset({"channels_first"})
+    #: forward and/or transposed quantized convolution (DIRECTIONS)
+    directions: frozenset = frozenset({"forward"})
     #: a requantized output has the activations' format (uint8 -> uint8, int8 -> int8)
     output_like_input: bool = False
 
     def __post_init__(self):
         s = object.__setattr__
-        for name, allowed in (("x_dtypes", X_DTYPES), ("outputs", OUTPUT_DTYPES), ("bias", BIAS_KINDS)):
+        for name, allowed in (("x_dtypes", X_DTYPES), ("outputs", OUTPUT_DTYPES), ("bias", BIAS_KINDS),
+                              ("layouts", LAYOUTS), ("directions", DIRECTIONS)):
             v = getattr(self, name)
             items = frozenset((v,) if isinstance(v, str) else v)
             bad = sorted(items - set(allowed))
@@ -243,6 +261,11 @@ class QuantCapabilities:
         """Why ``spec`` is outside the quantized claim, or None."""
         if spec.x_dtype not in self.x_dtypes:
             return f"x_dtype={spec.x_dtype} not in x_dtypes={sorted(self.x_dtypes)}"
+        direction = "transposed" if spec.conv.transposed else "forward"
+        if direction not in self.directions:
+            return f"a {direction} convolution but directions={sorted(self.directions)}"
+        if spec.conv.layout not in self.layouts:
+            return f"layout={spec.conv.layout} not in layouts={sorted(self.layouts)}"
         if spec.output not in self.outputs:
             return f"output={spec.output} not in outputs={sorted(self.outputs)}"
         if self.output_like_input and spec.requantized and spec.output != spec.x_dtype:
@@ -276,4 +299,6 @@ class QuantCapabilities:
 
     def summary(self) -> str:
         return (f"quantized x={','.join(sorted(self.x_dtypes))} w=int8 out={','.join(sorted(self.outputs))} "
-                f"model={self.model}{' per-channel' if self.per_channel else ''}")
+                f"model={self.model}{' per-channel' if self.per_channel else ''}"
+                + ("" if self.layouts == {"channels_first"} else f" layouts={','.join(sorted(self.layouts))}")
+                + ("" if self.directions == {"forward"} else f" directions={','.join(sorted(self.directions))}"))

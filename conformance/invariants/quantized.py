@@ -147,7 +147,7 @@ def dequantized(adapter, case, ctx):
     dev, why = rq.deviation(spec, acc, _model(adapter))
     bound = 0.5 + dev + err64
     if spec.bias == "float":
-        m = np.asarray([float(v) for v in rq.multipliers(spec)]).reshape((1, -1) + (1,) * spec.conv.ndim)
+        m = np.asarray([float(v) for v in rq.multipliers(spec)]).reshape(spec.channel_shape())
         bound = bound + 0.5 * m
     return compare(y, real, bound, what="y", criterion="|y - float64 conv of dequantized inputs| <= 1/2 + D",
                    explanation="half an output step for the final rounding; " + why)

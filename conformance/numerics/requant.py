@@ -31,7 +31,7 @@ from ..geometry.quant import INT_RANGES, QuantSpec, worst_sum
 from .gamma import U64, gamma
 from . import reference as ref
 
-__all__ = ["accumulate", "bias_q", "multipliers", "requantize_exact", "reference", "deviation",
+__all__ = ["accumulate", "per_weight", "bias_q", "multipliers", "requantize_exact", "reference", "deviation",
            "dequantized_reference", "quantize_multiplier", "fixed_point_requantize",
            "round_half_even", "U32"]
 
@@ -43,9 +43,24 @@ def _geometry(spec: QuantSpec):
     return spec.conv.replace(dtype="float64", bias=False)
 
 
-def _per_out(spec: QuantSpec, values, ndim_extra: int) -> np.ndarray:
-    """A per-tensor or per-output-channel tuple shaped to broadcast over axis 0 (w) or 1 (y)."""
-    return np.asarray(spec.channel(values), dtype=np.float64).reshape((-1,) + (1,) * ndim_extra)
+def per_weight(spec: QuantSpec, values) -> np.ndarray:
+    """A per-tensor or per-output-channel tuple shaped to broadcast over w: along axis 0
+    (C_out) forward; for a transposed w ``(C_in, C_out/G, *K)`` entry ``[c, j]`` holds
+    output channel ``g*C_out/G + j`` of the group ``g = c // (C_in/G)`` of input channel c."""
+    v = np.asarray(spec.channel(values), dtype=np.float64)
+    c, nd = spec.conv, spec.conv.ndim
+    if not c.transposed:
+        return v.reshape((-1,) + (1,) * (nd + 1))
+    opg, ipg = c.out_channels // c.groups, c.in_channels // c.groups
+    table = v.reshape(c.groups, opg)[np.arange(c.in_channels) // ipg]        # (C_in, C_out/G)
+    if c.layout == "channels_last":
+        return table.reshape((c.in_channels,) + (1,) * nd + (opg,))
+    return table.reshape((c.in_channels, opg) + (1,) * nd)
+
+
+def _by_channel(spec: QuantSpec, a: np.ndarray) -> np.ndarray:
+    """A view of y-like ``a`` with the output channel on axis 1 (writes reach ``a``)."""
+    return np.moveaxis(a, spec.channel_axis, 1)
 
 
 def round_half_even(num: int, den: int) -> int:
@@ -80,11 +95,11 @@ def accumulate(spec: QuantSpec, x, w, b=None) -> np.ndarray:
                         "holds sums below 2^53 only; use a shorter accumulation")
     g = _geometry(spec)
     xd = np.asarray(x, dtype=np.float64) - float(spec.x_zero_point)
-    wd = np.asarray(w, dtype=np.float64) - _per_out(spec, spec.w_zero_point, g.ndim + 1)
+    wd = np.asarray(w, dtype=np.float64) - per_weight(spec, spec.w_zero_point)
     acc = np.rint(ref.forward(g, xd, wd)).astype(np.int64)
     bq = bias_q(spec, b)
     if bq is not None:
-        acc = acc + bq.reshape((-1,) + (1,) * g.ndim)
+        acc = acc + bq.reshape(spec.channel_shape())
     return acc
 
 
@@ -98,10 +113,11 @@ def requantize_exact(spec: QuantSpec, acc: np.ndarray) -> np.ndarray:
     """clamp(round_half_even(acc * M_o) + y_zp, lo, hi), exactly (int64)."""
     lo, hi = spec.out_range()
     out = np.empty(acc.shape, dtype=np.int64)
+    acc1, out1 = _by_channel(spec, acc), _by_channel(spec, out)
     for o, m in enumerate(multipliers(spec)):
-        a = acc[:, o]
+        a = acc1[:, o]
         flat = [round_half_even(int(v) * m.numerator, m.denominator) for v in a.ravel().tolist()]
-        out[:, o] = np.asarray(flat, dtype=np.int64).reshape(a.shape) if flat else 0
+        out1[:, o] = np.asarray(flat, dtype=np.int64).reshape(a.shape) if flat else 0
     return np.clip(out + spec.y_zero_point, lo, hi)
 
 
@@ -125,7 +141,7 @@ def deviation(spec: QuantSpec, acc: np.ndarray, model: str) -> tuple[np.ndarray,
         why = ("int32 output: the exact sum, 0 units" if not spec.requantized else
                "model exact (real multiplier, round half to even, ONNX QuantizeLinear rule): 0 units")
         return np.zeros(acc.shape), why
-    m = np.asarray([float(v) for v in multipliers(spec)]).reshape((1, -1) + (1,) * spec.conv.ndim)
+    m = np.asarray([float(v) for v in multipliers(spec)]).reshape(spec.channel_shape())
     mag = np.abs(acc).astype(np.float64) * m
     if model == "fixed_point":
         shifts = [quantize_multiplier(float(v))[1] for v in multipliers(spec)]
@@ -155,14 +171,13 @@ def dequantized_reference(spec: QuantSpec, x, w, b=None) -> tuple[np.ndarray, np
     in output units): the float64 convolution of the dequantized inputs, in output units."""
     g = _geometry(spec)
     xr = spec.x_scale * (np.asarray(x, dtype=np.float64) - spec.x_zero_point)
-    ws = _per_out(spec, spec.w_scale, g.ndim + 1)
-    wr = ws * (np.asarray(w, dtype=np.float64) - _per_out(spec, spec.w_zero_point, g.ndim + 1))
+    wr = per_weight(spec, spec.w_scale) * (np.asarray(w, dtype=np.float64) - per_weight(spec, spec.w_zero_point))
     y = ref.forward(g, xr, wr)
     mag = ref.forward_magnitude(g, xr, wr)
     if b is not None and spec.bias != "none":
         br = (np.asarray(b, dtype=np.float64) * spec.x_scale * np.asarray(spec.channel(spec.w_scale))
               if spec.bias == "int32" else np.asarray(b, dtype=np.float64))
-        shape = (-1,) + (1,) * g.ndim
+        shape = spec.channel_shape()
         y = y + br.reshape(shape)
         mag = mag + np.abs(br).reshape(shape)
     n = (g.in_channels // g.groups) * math.prod(g.kernel_size) + 4
@@ -207,11 +222,12 @@ def fixed_point_requantize(spec: QuantSpec, acc: np.ndarray) -> np.ndarray:
     """The integer-only requantization of Jacob et al. 2018 (int64 result, saturated)."""
     lo, hi = spec.out_range()
     out = np.empty(acc.shape, dtype=np.int64)
+    acc1, out1 = _by_channel(spec, acc), _by_channel(spec, out)
     for o, m in enumerate(multipliers(spec)):
         m0, n = quantize_multiplier(float(m))
-        a = np.clip(acc[:, o], *INT_RANGES["int32"])
+        a = np.clip(acc1[:, o], *INT_RANGES["int32"])
         if n < 0:                       # M >= 1: shift left first (saturating)
             a = np.clip(a.astype(object) * (1 << -n), *INT_RANGES["int32"]).astype(np.int64)
             n = 0
-        out[:, o] = _rounding_shift(_srdhm(a, m0), n)
+        out1[:, o] = _rounding_shift(_srdhm(a, m0), n)
     return np.clip(out + spec.y_zero_point, lo, hi)

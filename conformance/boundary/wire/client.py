@@ -36,7 +36,7 @@ from ..limits import parse_bytes
 from .codec import (Reader, Region, WireEOF, WireFormatError, WireTimeout, encode,
                     read_message, write_all)
 from .messages import _Failure, check_hello, check_reply
-from .messages import output_bytes as _output_bytes, params as _params
+from .messages import output_bytes as _output_bytes, params as _params, quant_params
 
 __all__ = ["ExecAdapter"]
 
@@ -123,6 +123,17 @@ class ExecAdapter:
         self.name = self.hello["name"]
         self.version = self.hello["version"]
         self.capabilities = self._caps
+        self._offer_quantized()
+
+    def _offer_quantized(self):
+        """A program whose hello names the quantized pass gets ``quantized()``, and only
+        the float passes its hello names (as a Python object offering those methods)."""
+        named = self._caps.claimed_passes | self._caps.unclaimed_passes
+        if "quantized" in named:
+            self.quantized = self._quantized
+            for method in ("forward", "backward", "transposed"):
+                if method not in named:
+                    setattr(self, method, None)
 
     # -- the program ---------------------------------------------------------------------
     def _limits(self):
@@ -323,3 +334,11 @@ class ExecAdapter:
                    layout="channels_first"):
         p = _params(stride, padding, dilation, groups, layout, output_padding)
         return self._call("transposed", [("x", x), ("w", w), ("b", b)], p)["y"]
+
+    def _quantized(self, x, w, b=None, *, stride, padding, dilation, groups, layout="channels_first",
+                   output_padding=None, transposed=False, **quant):
+        """The quantized pass (offered as ``quantized`` when the hello claims it): the
+        keywords of boundary/contract.py ``quant_kwargs`` travel in ``params["quant"]``."""
+        p = quant_params(_params(stride, padding, dilation, groups, layout, output_padding), quant, b,
+                         transposed)
+        return self._call("quantized", [("x", x), ("w", w), ("b", b)], p)["y"]

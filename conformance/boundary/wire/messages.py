@@ -4,14 +4,20 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 from ...errors import AdapterOutputError, AdapterRaised, ConvWitnessError
 from ...geometry.capabilities import Capabilities
 from .codec import PROTOCOL
 
-__all__ = ["check_hello", "check_reply", "params", "output_bytes"]
+__all__ = ["check_hello", "check_reply", "params", "quant_params", "output_bytes", "QUANT_FIELDS"]
 
-_OUTPUTS = {"forward": (("y",), ()), "transposed": (("y",), ()),
+_OUTPUTS = {"forward": (("y",), ()), "transposed": (("y",), ()), "quantized": (("y",), ()),
             "backward": (("grad_x", "grad_w"), ("grad_b",))}
+#: the fields of a quantized call's ``params["quant"]`` (docs/wire-protocol.md), in the
+#: order of the call signature's keywords (boundary/contract.py ``quant_kwargs``)
+QUANT_FIELDS = ("x_scale", "x_zero_point", "w_scale", "w_zero_point", "y_scale",
+                "y_zero_point", "output", "clamp")
 
 
 class _Failure(Exception):
@@ -94,6 +100,29 @@ def params(stride, padding, dilation, groups, layout, output_padding) -> dict:
             "output_padding": [int(o) for o in (output_padding or (0,) * nd)]}
 
 
+def quant_params(geometry: dict, kw: dict, b, transposed: bool = False) -> dict:
+    """A quantized call's params: the geometry's, plus ``quant`` (QUANT_FIELDS as JSON:
+    lists for w_scale, w_zero_point and clamp; null for y_scale and clamp where absent),
+    ``bias``, the bias kind (none, int32 or float: the kind b's dtype says), and
+    ``transposed`` (true for a transposed convolution; the geometry then carries its
+    output_padding)."""
+    q = {}
+    for k in QUANT_FIELDS:
+        v = kw[k]
+        if k in ("x_scale", "y_scale"):
+            v = None if v is None else float(v)
+        elif k == "w_scale":
+            v = [float(s) for s in v]
+        elif k in ("w_zero_point", "clamp"):
+            v = None if v is None else [int(z) for z in v]
+        elif k != "output":
+            v = int(v)
+        q[k] = v
+    q["bias"] = "none" if b is None else ("int32" if np.asarray(b).dtype == np.int32 else "float")
+    q["transposed"] = bool(transposed)
+    return dict(geometry, quant=q)
+
+
 def output_bytes(method: str, arrays: dict, p: dict) -> int:
     """Bytes of the reply's arrays (to size the region); 0 where it cannot be told."""
     try:
@@ -101,19 +130,21 @@ def output_bytes(method: str, arrays: dict, p: dict) -> int:
         if method == "backward":
             return sum(a.nbytes + 64 for a in arrays.values())
         cl = p["layout"] == "channels_last"
+        tr = method == "transposed" or (method == "quantized" and p["quant"].get("transposed"))
         size, kernel = (x.shape[1:-1], w.shape[1:-1]) if cl else (x.shape[2:], w.shape[2:])
         out = []
         for i, (L, k) in enumerate(zip(size, kernel)):
             s, d, (lo, hi) = p["stride"][i], p["dilation"][i], p["padding"][i]
             e = d * (k - 1) + 1
-            if method == "forward":
+            if not tr:
                 out.append((L + lo + hi - e) // s + 1)
             else:
                 out.append(s * (L - 1) + e + p["output_padding"][i] - lo - hi)
-        if method == "forward":
+        if not tr:
             channels = w.shape[0]
         else:
             channels = (w.shape[-1] if cl else w.shape[1]) * p["groups"]
-        return x.shape[0] * channels * math.prod(max(o, 0) for o in out) * x.dtype.itemsize + 64
+        item = np.dtype(p["quant"]["output"]).itemsize if method == "quantized" else x.dtype.itemsize
+        return x.shape[0] * channels * math.prod(max(o, 0) for o in out) * item + 64
     except (KeyError, IndexError, TypeError, ZeroDivisionError):
         return 0

@@ -46,8 +46,29 @@ def _kwargs(params: dict, method: str) -> dict:
           "dilation": tuple(params["dilation"]), "groups": int(params["groups"])}
     if params.get("layout", "channels_first") != "channels_first":
         kw["layout"] = params["layout"]
-    if method == "transposed":
+    quant = params.get("quant") if method == "quantized" else None
+    if method == "transposed" or (isinstance(quant, dict) and quant.get("transposed")):
         kw["output_padding"] = tuple(params.get("output_padding") or (0,) * len(kw["stride"]))
+    if method == "quantized":
+        kw.update(_quant_kwargs(quant))
+        if quant.get("transposed"):
+            kw["transposed"] = True
+    return kw
+
+
+def _quant_kwargs(q) -> dict:
+    """``params["quant"]`` as the keywords of ``quantized()`` (boundary/contract.py
+    ``quant_kwargs``: tuples for w_scale, w_zero_point and clamp)."""
+    from .messages import QUANT_FIELDS
+    q = q if isinstance(q, dict) else {}
+    missing = [k for k in QUANT_FIELDS if k not in q]
+    if missing:
+        raise ValueError(f"params.quant lacks {', '.join(missing)}; a quantized call carries "
+                         f"{', '.join(QUANT_FIELDS)} (docs/wire-protocol.md)")
+    kw = {k: q[k] for k in QUANT_FIELDS}
+    for k in ("w_scale", "w_zero_point", "clamp"):
+        if kw[k] is not None:
+            kw[k] = tuple(kw[k])
     return kw
 
 
@@ -80,7 +101,7 @@ def _arrays(method: str, result) -> list:
 def serve(adapter, proto_in: int = 0, proto_out: int = 1) -> int:
     """Answer requests until end of input; returns the exit status."""
     methods = {"forward": adapter._forward, "backward": adapter._backward,
-               "transposed": adapter._transposed}
+               "transposed": adapter._transposed, "quantized": adapter._quantized}
     hello = {"type": "hello", "protocol": PROTOCOL, "name": adapter.name,
              "version": adapter.version, "capabilities": adapter.capabilities.to_dict(),
              "carriers": ["inline", "region"]}
