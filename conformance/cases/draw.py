@@ -319,15 +319,10 @@ def zero_spatial_allowed(caps: Capabilities, needs: Needs) -> bool:
 def _empty_axis(axis, caps: Capabilities):
     """The axis with length 0 and padding enough for the windows (all of them in it)."""
     _, k, s, d, lo, hi, op = axis
-    e = d * (k - 1) + 1
-    lo, hi = max(lo, 0), max(hi, 0)
-    if lo + hi < e:
-        if "asymmetric" in caps.padding:
-            hi = e - lo
-        else:
-            lo = hi = -(-e // 2)
-    if lo != hi and "asymmetric" not in caps.padding:
-        lo = hi = max(lo, hi)
+    e, asym = d * (k - 1) + 1, "asymmetric" in caps.padding
+    lo, hi = max(lo, 0), max(hi, 0, e - max(lo, 0) if asym else 0)
+    if not asym:
+        lo = hi = max(lo, hi, -(-e // 2))
     return 0, k, s, d, lo, hi, op
 
 
