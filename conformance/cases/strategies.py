@@ -55,10 +55,14 @@ _BOOLEANS = st.booleans()
 
 def _integers(lo, hi):
     """``st.integers(lo, hi)``, built once per range: a strategy built afresh on every draw
-    is validated afresh too, which cost about half of each example's drawing."""
+    is validated afresh too, which cost about half of each example's drawing. Kept
+    unwrapped where hypothesis wraps it lazily (``wrapped_strategy``, validated first):
+    the same draws, without the unwrapping on each one."""
     s = _INTEGERS.get((lo, hi))
     if s is None:
-        s = _INTEGERS[(lo, hi)] = st.integers(lo, hi)
+        s = st.integers(lo, hi)
+        s.validate()
+        s = _INTEGERS[(lo, hi)] = getattr(s, "wrapped_strategy", s)
     return s
 
 
