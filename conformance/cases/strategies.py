@@ -71,7 +71,8 @@ class _HypothesisPicker:
 
     A choice from a sequence is its index drawn as an integer: the same one choice in
     ``[0, len - 1]`` that ``st.sampled_from`` draws, shrinking the same way (toward the
-    first element); a one-element sequence draws nothing, as ``sampled_from`` (``just``)."""
+    first element), for sequences up to 128 long (longer ones use ``sampled_from``); a
+    one-element sequence draws nothing, as ``sampled_from`` (``just``)."""
 
     def __init__(self, draw):
         self.draw = draw
@@ -83,6 +84,8 @@ class _HypothesisPicker:
         seq = seq if isinstance(seq, (list, tuple)) else list(seq)
         if len(seq) == 1:
             return seq[0]
+        if len(seq) > 128:              # st.integers weights the ends of ranges this long
+            return self.draw(st.sampled_from(seq), label=label)
         return seq[self.draw(_integers(0, len(seq) - 1), label=label)]
 
     def bool(self, label):
