@@ -193,7 +193,9 @@ class Adapter:
 
     def _call(self, method: str, fn, *args, **kwargs):
         """Call the implementation; its own exceptions become AdapterRaised with the traceback."""
-        self.signatures.add((method, tuple(None if a is None else (np.shape(a), str(np.asarray(a).dtype))
+        # the dtype itself, not its name: equal exactly when the names are, and str(dtype)
+        # cost more than the rest of the call's bookkeeping
+        self.signatures.add((method, tuple(None if a is None else (np.shape(a), np.asarray(a).dtype)
                                            for a in args), tuple(sorted(kwargs.items()))))
         try:
             return fn(*args, **kwargs)

@@ -5,12 +5,14 @@ imports hypothesis.
 """
 from __future__ import annotations
 
+from functools import lru_cache
+
 from ..geometry.spec import ConvSpec
 
 #: channel counts on either side of vector and tile widths (8, 16, 32): class C13
 THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
 
-__all__ = ["feature_of", "reach_of", "pair_tags", "PAIRS"]
+__all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS"]
 
 
 def feature_of(spec: ConvSpec) -> dict:
@@ -124,3 +126,12 @@ def pair_tags(spec: ConvSpec) -> set:
     when the axes pad differently)."""
     fo = {k: v.split("+") for k, v in feature_of(spec).items()}
     return {f"pair:{name}={x}×{y}" for name, (a, b) in PAIRS.items() for x in fo[a] for y in fo[b]}
+
+
+@lru_cache(maxsize=4096)
+def geometry_tags(spec: ConvSpec) -> tuple[tuple, frozenset]:
+    """(``"key=value"`` of :func:`feature_of`, :func:`reach_of` | :func:`pair_tags`) of a
+    spec: what the runner tallies for each checked geometry, a function of the geometry
+    alone, so computed once per geometry (the schedules of a run share geometries)."""
+    return (tuple(f"{k}={v}" for k, v in feature_of(spec).items()),
+            frozenset(reach_of(spec) | pair_tags(spec)))

@@ -49,20 +49,47 @@ def _check_args(capabilities, profile, needs):
     return profile, needs
 
 
+_INTEGERS: dict = {}
+_BOOLEANS = st.booleans()
+
+
+def _integers(lo, hi):
+    """``st.integers(lo, hi)``, built once per range: a strategy built afresh on every draw
+    is validated afresh too, which cost about half of each example's drawing. Kept
+    unwrapped where hypothesis wraps it lazily (``wrapped_strategy``, validated first):
+    the same draws, without the unwrapping on each one."""
+    s = _INTEGERS.get((lo, hi))
+    if s is None:
+        s = st.integers(lo, hi)
+        s.validate()
+        s = _INTEGERS[(lo, hi)] = getattr(s, "wrapped_strategy", s)
+    return s
+
+
 class _HypothesisPicker:
-    """The builder's choices as hypothesis draws (each one shrinks; labels name them)."""
+    """The builder's choices as hypothesis draws (each one shrinks; labels name them).
+
+    A choice from a sequence is its index drawn as an integer: the same one choice in
+    ``[0, len - 1]`` that ``st.sampled_from`` draws, shrinking the same way (toward the
+    first element), for sequences up to 128 long (longer ones use ``sampled_from``); a
+    one-element sequence draws nothing, as ``sampled_from`` (``just``)."""
 
     def __init__(self, draw):
         self.draw = draw
 
     def int(self, lo, hi, label):
-        return self.draw(st.integers(lo, hi), label=label)
+        return self.draw(_integers(lo, hi), label=label)
 
     def choice(self, seq, label):
-        return self.draw(st.sampled_from(list(seq)), label=label)
+        seq = seq if isinstance(seq, (list, tuple)) else list(seq)
+        if len(seq) == 1:
+            return seq[0]
+        if len(seq) > 128:              # st.integers weights the ends of ranges this long
+            return self.draw(st.sampled_from(seq), label=label)
+        return seq[self.draw(_integers(0, len(seq) - 1), label=label)]
 
     def bool(self, label):
-        return self.draw(st.booleans(), label=label)
+        return self.draw(_BOOLEANS, label=label)
 
     def reject(self):
         assume(False)
@@ -81,12 +108,13 @@ def specs(capabilities: Capabilities, profile="quick", needs: Needs | None = Non
 
 @st.composite
 def _cases(draw, caps, profile, needs, count):
-    spec = draw(_spec(caps, profile, needs))
+    pick = _HypothesisPicker(draw)
+    spec = build_spec(pick, caps, profile, needs)
     kinds = list(needs.kinds)
     out = []
     for i in range(count):
-        kind = draw(st.sampled_from(kinds), label="kind")
-        seed = draw(st.integers(0, 2 ** 32 - 1), label="seed")
+        kind = pick.choice(kinds, "kind")
+        seed = pick.int(0, 2 ** 32 - 1, "seed")
         out.append(make_case(spec, kind, seed))
     return tuple(out)
 

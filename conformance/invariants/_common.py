@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 from dataclasses import replace
+from functools import lru_cache
 
 import numpy as np
 
@@ -48,8 +49,7 @@ def pass_bound(adapter, spec, pass_: str, arrays: dict) -> tuple[np.ndarray, Bou
 
 def overflow_possible(spec, adapter, bound: Bound) -> np.ndarray:
     """Mask of elements where an intermediate or final overflow is possible (not judged)."""
-    m = model_of(adapter, spec, bound.pass_).resolve(spec.dtype)
-    top = min(get_format(m.accumulate).max, get_format(m.output).max)
+    top = _overflow_top(model_of(adapter, spec, bound.pass_), spec.dtype)
     mag = bound.magnitude
     if mag is None:
         return np.zeros(np.shape(bound.values), bool)
@@ -58,6 +58,14 @@ def overflow_possible(spec, adapter, bound: Bound) -> np.ndarray:
     if bound.overflow is not None:
         free = free | bound.overflow
     return free
+
+
+@lru_cache(maxsize=256)
+def _overflow_top(model, dtype: str) -> float:
+    """The largest finite value of the accumulation and output formats of ``model`` on
+    ``dtype`` (resolved once per model and dtype)."""
+    m = model.resolve(dtype)
+    return min(get_format(m.accumulate).max, get_format(m.output).max)
 
 
 def judge(adapter, spec, actual, expected, bound: Bound, *, what: str, criterion: str,

@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import lru_cache
 
 import numpy as np
 
@@ -238,6 +239,23 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
             return fast
         m = ErrorModel(accumulate=model.accumulate, product=model.product, operand=model.operand,
                        output=model.output).resolve(spec.dtype)
+    n, coeff, u_out, absolute, vacuous, explanation, exact_limit = _setup(spec, m, pass_, with_bias)
+    mag = np.asarray(magnitude, dtype=np.float64)
+    ref = np.asarray(reference, dtype=np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        values = coeff * mag + u_out * np.abs(ref) + absolute
+        if vacuous:
+            values = np.where(mag == 0, u_out * np.abs(ref) + absolute, np.inf)
+    return Bound(pass_=pass_, n=n, coefficient=coeff, u_out=u_out, absolute=absolute,
+                 values=values, magnitude=mag, explanation=explanation, exact_limit=exact_limit,
+                 vacuous=vacuous)
+
+
+@lru_cache(maxsize=1024)
+def _setup(spec, m: ResolvedModel, pass_: str, with_bias: bool) -> tuple:
+    """The scalars of a direct-summation bound: (n, coefficient, u_out, absolute, vacuous,
+    explanation, exact_limit). A function of the geometry, the resolved model and the pass
+    alone, so computed once per geometry (an invariant derives several bounds per example)."""
     n = spec.accumulation_length("forward" if pass_ == "transposed" else pass_)
     products = pass_ != "grad_bias"
     terms = n + (1 if with_bias else 0)
@@ -257,21 +275,13 @@ def derive(spec, model: ErrorModel, pass_: str, magnitude, reference, *,
     absolute = out_fmt.smallest_subnormal
     if products and m.u_p:
         absolute += max(n / 2, 1) * get_format(m.product).smallest_subnormal * (1 + u_out)
-    mag = np.asarray(magnitude, dtype=np.float64)
-    ref = np.asarray(reference, dtype=np.float64)
     vacuous = not math.isfinite(e)
-    with np.errstate(invalid="ignore", over="ignore"):
-        values = coeff * mag + u_out * np.abs(ref) + absolute
-        if vacuous:
-            values = np.where(mag == 0, u_out * np.abs(ref) + absolute, np.inf)
     explanation = (f"{desc} on {_mag_name(pass_)}, plus output rounding u={_fmt_u(u_out)} "
                    f"({m.output}) and the float64 reference's γ_{terms}")
     if vacuous:
         explanation = (f"vacuous: {desc} has n·u >= 1, so the worst-case bound says nothing; "
                        "declare a blocked-accumulation model (ErrorModel.block) to get a usable one")
-    return Bound(pass_=pass_, n=n, coefficient=coeff, u_out=u_out, absolute=absolute,
-                 values=values, magnitude=mag, explanation=explanation, exact_limit=m.exact_limit(),
-                 vacuous=vacuous)
+    return n, coeff, u_out, absolute, vacuous, explanation, m.exact_limit()
 
 
 def _bias_after(spec, model, pass_, magnitude, reference, arrays) -> Bound:

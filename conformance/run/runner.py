@@ -24,7 +24,7 @@ from ..errors import AdapterCrashed, AdapterOutputError, AdapterRaised, AdapterT
 from ..invariants.evidence import Evidence, InvariantFailure, verdict_of as _verdict_of
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
-from ..cases.features import feature_of, pair_tags, reach_of
+from ..cases.features import geometry_tags
 from .covering import covering_examples, free_examples, with_examples
 from .signals import check as interruption_check
 
@@ -169,9 +169,9 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
 
     def geometry_checked(spec):
         tally.geometries += 1
-        for k, v in feature_of(spec).items():
-            tally.coverage[f"{k}={v}"] += 1
-        tally.reach.update(reach_of(spec) | pair_tags(spec))
+        coverage, reach = geometry_tags(spec)
+        tally.coverage.update(coverage)
+        tally.reach.update(reach)
 
     def body(cases):
         interruption_check()           # a signal whose exception was swallowed (run/signals.py)
