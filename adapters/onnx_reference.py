@@ -59,7 +59,7 @@ from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.formats import available
 from convwitness.numerics.bounds import ErrorModel
 
-from .onnxruntime_node import OPSET, conv_model  # one ONNX model for both adapters
+from .onnxruntime_node import OPSET, SessionCache, conv_model  # one ONNX model for both adapters
 
 __all__ = ["OnnxReferenceAdapter", "claimed_dtypes"]
 
@@ -99,7 +99,7 @@ class OnnxReferenceAdapter:
         self._elem = {"float64": TensorProto.DOUBLE, "float32": TensorProto.FLOAT,
                       "float16": TensorProto.FLOAT16, "bfloat16": TensorProto.BFLOAT16}
         self.version = onnx.__version__
-        self._cache: dict = {}
+        self._cache = SessionCache()
         dtypes = {d for d in claimed_dtypes(defs) if available(d)}
         models = {}
         for dt in ("float16", "bfloat16"):

@@ -34,6 +34,8 @@ version 10) and run on the CPU execution provider:
 """
 from __future__ import annotations
 
+from collections import OrderedDict
+
 import numpy as np
 
 from convwitness.numerics.bounds import ErrorModel
@@ -78,7 +80,7 @@ class OnnxRuntimeAdapter:
         self._elem = {"float32": TensorProto.FLOAT, "float16": TensorProto.FLOAT16,
                       "float64": TensorProto.DOUBLE}
         self.version = onnxruntime.__version__
-        self._sessions: dict = {}
+        self._sessions = SessionCache()
         kernels = _cpu_kernel_types()
         dtypes = {"float32"}
         models = {}
@@ -153,6 +155,34 @@ def _channels_first(layout: str):
     if layout != "channels_first":
         raise ValueError(f"onnxruntime adapter: layout={layout!r}, expected 'channels_first' "
                          "(ONNX Conv is defined on NC(D)HW); transpose the arrays first")
+
+
+#: sessions kept per adapter (the most recently used ones)
+MAX_SESSIONS = 48
+
+
+class SessionCache(OrderedDict):
+    """Sessions per geometry, the ``limit`` most recently used kept. Every onnxruntime
+    session owns an intra-op thread pool (one thread per core beside the caller's), so an
+    unbounded cache ran out of threads in a long run ("pthread_create failed ... Cannot
+    allocate memory" once some 500 sessions lived under the worker's memory limit): an
+    error of this adapter that the report would have laid on onnxruntime."""
+
+    def __init__(self, limit: int = MAX_SESSIONS):
+        super().__init__()
+        self.limit = limit
+
+    def get(self, key, default=None):
+        if key not in self:
+            return default
+        self.move_to_end(key)
+        return self[key]
+
+    def __setitem__(self, key, value):
+        super().__setitem__(key, value)
+        self.move_to_end(key)
+        while len(self) > self.limit:
+            self.popitem(last=False)
 
 
 def conv_model(helper, op: str, elem, ndim: int, attrs: dict, has_bias: bool):

@@ -36,6 +36,8 @@ from convwitness.errors import AdapterUnavailable
 from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.quant import QuantCapabilities
 
+from .onnxruntime_node import SessionCache      # sessions bounded: each owns a thread pool
+
 __all__ = ["QuantOnnxRuntime"]
 
 OPSET = 22
@@ -58,7 +60,7 @@ class QuantOnnxRuntime:
                 "onnx and onnxruntime are not installed; fix: pip install 'convwitness[onnx]'") from None
         self._onnx, self._ort, self._helper, self._tp = onnx, onnxruntime, helper, TensorProto
         self.version = onnxruntime.__version__
-        self._sessions: dict = {}
+        self._sessions = SessionCache()
         self.capabilities = Capabilities(
             passes=frozenset({"quantized"}),
             quant=QuantCapabilities(bias=frozenset({"none", "int32"}), clamp=False, model=model,

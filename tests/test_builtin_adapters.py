@@ -476,3 +476,25 @@ def test_torch_float16_finding_case_gets_crash_verdict_exactly_when_torch_dies()
     finally:
         adapter.close()
     assert crashed == died, (res.returncode, res.stderr[-500:])
+
+
+def test_onnxruntime_sessions_stay_bounded_in_a_long_run():
+    """Each onnxruntime InferenceSession owns an intra-op thread pool (onnxruntime docs,
+    "Thread management": per-session thread pools unless global ones are set); with one
+    session per geometry an unbounded cache ran a standard-profile run out of threads
+    ("pthread_create failed ... Cannot allocate memory"; `convwitness run --adapter
+    onnxruntime --profile standard --seed 1`, onnxruntime 1.32.0, this 2-core CPU machine).
+    The cache keeps the most recent sessions, and the live threads stay bounded."""
+    pytest.importorskip("onnxruntime")
+    from adapters.onnxruntime_node import MAX_SESSIONS, OnnxRuntimeAdapter
+    inner = OnnxRuntimeAdapter()
+    x, w = np.ones((1, 1, 8), np.float32), np.ones((1, 1, 2), np.float32)
+    threads = lambda: len(os.listdir("/proc/self/task"))   # noqa: E731 (Linux)
+    for i in range(MAX_SESSIONS):
+        inner.forward(x, w, None, stride=(1,), padding=((i % 7, i // 7),), dilation=(1,), groups=1)
+    full = threads()
+    for i in range(MAX_SESSIONS, 3 * MAX_SESSIONS):
+        y = inner.forward(x, w, None, stride=(1,), padding=((i % 7, i // 7),), dilation=(1,), groups=1)
+        assert y.shape == (1, 1, 7 + i % 7 + i // 7)
+    assert len(inner._sessions) == MAX_SESSIONS
+    assert threads() <= full + 2          # evicted sessions took their threads with them

@@ -197,3 +197,23 @@ def test_closing_an_arena_twice_leaves_later_files_alone(tmp_path):
             os.fsync(fh.fileno())
     finally:
         Arena.remove(arena.name)
+
+
+def test_an_allocation_refused_inside_the_port_names_the_memory_limit():
+    """Under isolation the worker has a memory limit; a port that reports ENOMEM ("Cannot
+    allocate memory", POSIX errno 12) is told that the limit may be the cause, and how to
+    raise it (the error stays the port's: a raise, not a crash)."""
+    import numpy as np
+    from convwitness.boundary.isolation.client import load_isolated
+    from convwitness.errors import AdapterRaised
+    from fixtures.faulty_adapters import BIG
+    a = load_isolated(f"{FIXTURE}:ThreadsExhausted", memory_limit=1 << 30)
+    try:
+        from convwitness import ConvSpec
+        spec = ConvSpec(batch=1, in_channels=1, out_channels=1, input_size=(BIG + 1,),
+                        kernel_size=(1,), dtype="float64", bias=False)
+        with pytest.raises(AdapterRaised, match=r"Cannot allocate memory \(the worker runs under a "
+                                                r"memory limit of 1\.00 GiB.*raise --memory-limit\)"):
+            a.forward(spec, np.ones(spec.x_shape), np.ones(spec.w_shape))
+    finally:
+        a.close()

@@ -37,6 +37,8 @@ from ...errors import AdapterCrashed, AdapterLoadError, AdapterRaised, AdapterTi
 __all__ = ["load_isolated", "ProcessAdapter", "DEFAULT_MEMORY_LIMIT"]
 
 DEFAULT_MEMORY_LIMIT = 4 << 30
+#: words of an allocation refused inside the port (C library, C++ runtime, pthreads)
+_OUT_OF_MEMORY = ("Cannot allocate memory", "bad_alloc", "MemoryError", "out of memory")
 _NO_FORK = ("jax",)          # libraries that must not be forked once imported
 
 
@@ -312,7 +314,11 @@ class ProcessAdapter:
                                  f"{self.memory_limit / 2**30:.2f} GiB (--memory-limit): {msg['memory']}",
                                  self.drain_output())
         if "raised" in msg:
-            raise AdapterRaised(f"adapter {self.name} {op} raised {msg['raised']}", msg["traceback"],
+            hint = ""
+            if self.memory_limit and any(t in msg["raised"] for t in _OUT_OF_MEMORY):
+                hint = (f" (the worker runs under a memory limit of {self.memory_limit / 2**30:.2f} GiB, "
+                        "thread stacks included: if the port needs more, raise --memory-limit)")
+            raise AdapterRaised(f"adapter {self.name} {op} raised {msg['raised']}{hint}", msg["traceback"],
                                 self.drain_output())
         arena = self._reply_arenas.get(msg["arena"])
         if arena is None or arena.size < msg["arena_size"]:
