@@ -326,3 +326,27 @@ def test_backward_output_errors():
     assert "grad_b expected numpy.ndarray shape=(1,) dtype=float32, got None" in str(info.value)
     with pytest.raises(AdapterOutputError, match="offers no backward"):
         _returning(None).backward(SPEC, FIG_X, FIG_W, None, g)
+
+
+def test_our_own_import_error_is_a_bug_not_an_unavailable_adapter(monkeypatch):
+    """An ImportError naming one of our modules (Python docs, ImportError.name: "the name
+    of the module that was attempted to be imported") is a bug to report, never a skip as
+    for a missing optional library; a missing third-party module stays 'unavailable'."""
+    import types
+    import convwitness.boundary.loading as loading
+    from convwitness.errors import AdapterLoadError, AdapterUnavailable
+
+    def broken():
+        raise ImportError("cannot import name 'X' from 'convwitness.adapters.reference'",
+                          name="convwitness.adapters.reference")
+
+    def missing():
+        raise ModuleNotFoundError("No module named 'somelib'", name="somelib")
+
+    fake = types.ModuleType("fake_builtin_module")
+    fake.broken, fake.missing = broken, missing
+    monkeypatch.setitem(sys.modules, "fake_builtin_module", fake)
+    with pytest.raises(AdapterLoadError, match="bug in convwitness, not a missing dependency"):
+        loading._load_builtin("broken", "fake_builtin_module:broken")
+    with pytest.raises(AdapterUnavailable, match="somelib"):
+        loading._load_builtin("missing", "fake_builtin_module:missing")

@@ -75,6 +75,12 @@ def _load_builtin(name: str, target: str) -> Adapter:
     except AdapterUnavailable:
         raise
     except ImportError as exc:
+        top = (getattr(exc, "name", None) or "").partition(".")[0]
+        if top in ("convwitness", "conformance", "adapters"):
+            # our own code failed to import: a bug to fix, never an optional library to skip
+            raise AdapterLoadError(f"adapter {name!r}: convwitness's own code failed to import "
+                                   f"({exc}); this is a bug in convwitness, not a missing "
+                                   "dependency: please report it") from exc
         raise AdapterUnavailable(f"adapter {name!r} is unavailable: {exc}") from None
     return wrap(obj, source=name)
 
