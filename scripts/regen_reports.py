@@ -7,7 +7,8 @@
   (reference, torch, jax, onnxruntime, onnx-reference, tensorflow, scipy) and for the Oxtervane OXT-16 demo port
   (``oxtervane-npu``, the README's default) and its planted tile-remainder sibling
   (``oxtervane-npu-tailbug``), the quantized kernels of onnxruntime and torch
-  (``onnxruntime-convinteger``, ``onnxruntime-qlinearconv``, ``torch-quant``) and the
+  (``onnxruntime-convinteger``, ``onnxruntime-qlinearconv``, ``torch-quant``, and torch's
+  transposed quantized conv under its default engine and under fbgemm) and the
   Oxtervane int8 demo port with its planted padding bug (``oxtervane-int8``,
   ``oxtervane-int8-padbug``): report.json, report.html, summary.md,
   junit.xml and any witnesses, written by ``convwitness run``. An adapter whose library
@@ -38,6 +39,7 @@ BUILTINS = ("reference", "torch", "jax", "onnxruntime", "onnx-reference", "tenso
             "oxtervane-npu",
             "convwitness.adapters.oxtervane:OxtervaneNPUTailBug",
             "onnxruntime-convinteger", "onnxruntime-qlinearconv", "torch-quant",
+            "torch-quant-transposed", "torch-quant-transposed-fbgemm",
             "oxtervane-int8", "oxtervane-int8-padbug")
 DEMO = "reports/_demo/brindlemoss_port.py"
 DEMOS = (("brindlemoss-0.3.0", f"{DEMO}:BrindlemossPort030"), ("brindlemoss-0.3.1", f"{DEMO}:BrindlemossPort"))
