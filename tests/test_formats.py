@@ -206,3 +206,27 @@ def test_format_table_is_consistent():
         # min subnormal = min normal * 2^-nmant, for every binary format (IEEE 754-2019 §3.3)
         assert fmt.smallest_subnormal == fmt.tiny * 2.0 ** -fmt.nmant, name
         assert fmt.u == 2.0 ** -(fmt.nmant + 1)
+
+
+def test_near_max_values_stay_finite_when_the_largest_result_is_tiny():
+    """The near_max kind scales x by 2^k so that the largest |x|*|w| sum nears the format's
+    maximum. With stride 2 the middle element of x is read by no window; when the sums are
+    tiny beside it, 2^k would push it past float64's maximum (about 1.8e308, IEEE 754
+    binary64) and the scale was computed from an infinity (an OverflowError of ours, seen
+    in `convwitness selftest --seeds 4 --only weight_grad_mean`). The values now stay
+    finite; an ordinary case is still scaled near the top (within [max/8, max/2]: log2 of
+    float64's maximum rounds to 1024, so the target max/4 can come out as 2^1022)."""
+    from convwitness import ConvSpec
+    from convwitness.cases.values import _scale_near_max
+    from convwitness.numerics import reference
+    spec = ConvSpec(batch=1, in_channels=1, out_channels=1, input_size=(3,), kernel_size=(1,),
+                    stride=2, dtype="float64", bias=False)
+    arrays = {"x": np.array([[[1e-200, 1.0, 1e-200]]]), "w": np.array([[[1.0]]]), "b": None,
+              "grad_y": np.ones(spec.y_shape)}
+    _scale_near_max(spec, arrays)
+    assert all(np.isfinite(v).all() for v in arrays.values() if v is not None)
+    ordinary = {"x": np.array([[[0.5, 1.0, 0.25]]]), "w": np.array([[[1.0]]]), "b": None,
+                "grad_y": np.ones(spec.y_shape)}
+    _scale_near_max(spec, ordinary)
+    top = reference.forward_magnitude(spec, ordinary["x"], ordinary["w"], None).max()
+    assert np.finfo(np.float64).max / 8 <= top <= np.finfo(np.float64).max / 2

@@ -119,16 +119,23 @@ def _scale_near_max(spec, arrays):
     if top <= 0 or not np.isfinite(top):
         return
     k = math.floor(math.log2(fmt.max) - 2 - math.log2(top))
-    arrays["x"] = np.ldexp(x, k)
-    if b is not None:
-        arrays["b"] = np.ldexp(to_format(b, spec.dtype).astype(np.float64), k)
-    arrays["w"] = w
-    xmax = float(np.abs(arrays["x"]).max()) if arrays["x"].size else 0.0
-    if xmax > fmt.max:
-        # move part of the scale into w
-        shift = math.ceil(math.log2(xmax / fmt.max)) + 1
-        arrays["x"] = np.ldexp(arrays["x"], -shift)
-        arrays["w"] = np.ldexp(w, shift)
+    before = dict(arrays)
+    with np.errstate(over="ignore", invalid="ignore"):
+        arrays["x"] = np.ldexp(x, k)
+        if b is not None:
+            arrays["b"] = np.ldexp(to_format(b, spec.dtype).astype(np.float64), k)
+        arrays["w"] = w
+        xmax = float(np.abs(arrays["x"]).max()) if arrays["x"].size else 0.0
+        if xmax > fmt.max and np.isfinite(xmax):
+            # move part of the scale into w
+            shift = math.ceil(math.log2(xmax / fmt.max)) + 1
+            arrays["x"] = np.ldexp(arrays["x"], -shift)
+            arrays["w"] = np.ldexp(w, shift)
+    if not all(v is None or np.isfinite(v).all() for v in arrays.values()):
+        # the largest result is tiny beside an element no window reads (or a zero weight
+        # hides it): no power of two puts it near the top of the range with every stored
+        # value finite, so the values stay as drawn
+        arrays.update(before)
 
 
 def _plant_special(rng, spec, kind, arrays):
