@@ -59,7 +59,8 @@ from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.formats import available
 from convwitness.numerics.bounds import ErrorModel
 
-from .onnxruntime_node import OPSET, SessionCache, conv_model  # one ONNX model for both adapters
+from .onnxruntime_node import (OPSET, OnnxConvCalls, SessionCache,  # one ONNX model for both
+                               conv_feed, conv_model)
 
 __all__ = ["OnnxReferenceAdapter", "claimed_dtypes"]
 
@@ -82,7 +83,7 @@ def claimed_dtypes(defs, opset: int = OPSET) -> set[str]:
     return set.intersection(*per_op)
 
 
-class OnnxReferenceAdapter:
+class OnnxReferenceAdapter(OnnxConvCalls):
     """One-node ONNX models run by ``onnx.reference.ReferenceEvaluator`` (pure numpy)."""
 
     name = "onnx-reference"
@@ -140,23 +141,4 @@ class OnnxReferenceAdapter:
         if output_padding is not None:
             attrs.append(("output_padding", tuple(int(o) for o in output_padding)))
         sess = self._session(op, x.dtype.name, x.ndim - 2, tuple(attrs), b is not None)
-        feed = {"X": np.ascontiguousarray(x), "W": np.ascontiguousarray(w)}
-        if b is not None:
-            feed["B"] = np.ascontiguousarray(b)
-        return sess.run(None, feed)[0]
-
-    # -- the call signature ----------------------------------------------------------
-    def forward(self, x, w, b, *, stride, padding, dilation, groups, layout="channels_first"):
-        _channels_first(layout)
-        return self._run("Conv", x, w, b, stride, padding, dilation, groups)
-
-    def transposed(self, x, w, b, *, stride, padding, dilation, groups, output_padding,
-                   layout="channels_first"):
-        _channels_first(layout)
-        return self._run("ConvTranspose", x, w, b, stride, padding, dilation, groups, output_padding)
-
-
-def _channels_first(layout: str):
-    if layout != "channels_first":
-        raise ValueError(f"onnx-reference adapter: layout={layout!r}, expected 'channels_first' "
-                         "(ONNX Conv is defined on NC(D)HW); transpose the arrays first")
+        return sess.run(None, conv_feed(x, w, b))[0]

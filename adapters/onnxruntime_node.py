@@ -63,7 +63,41 @@ def _cpu_kernel_types(ops=("Conv", "ConvTranspose")) -> set[str] | None:
     return set.intersection(*per_op.values())
 
 
-class OnnxRuntimeAdapter:
+class OnnxConvCalls:
+    """The call signature of the ONNX Conv adapters (onnxruntime, onnx-reference): forward
+    and transposed through the class's ``_run``, channels first only."""
+
+    def forward(self, x, w, b, *, stride, padding, dilation, groups, layout="channels_first"):
+        self._channels_first(layout)
+        return self._run("Conv", x, w, b, stride, padding, dilation, groups)
+
+    def transposed(self, x, w, b, *, stride, padding, dilation, groups, output_padding,
+                   layout="channels_first"):
+        self._channels_first(layout)
+        return self._run("ConvTranspose", x, w, b, stride, padding, dilation, groups, output_padding)
+
+    def _channels_first(self, layout: str):
+        if layout != "channels_first":
+            raise ValueError(f"{self.name} adapter: layout={layout!r}, expected 'channels_first' "
+                             "(ONNX Conv is defined on NC(D)HW); transpose the arrays first")
+
+
+def conv_feed(x, w, b) -> dict:
+    """The inputs X, W (and B) of a Conv/ConvTranspose model, contiguous."""
+    feed = {"X": np.ascontiguousarray(x), "W": np.ascontiguousarray(w)}
+    if b is not None:
+        feed["B"] = np.ascontiguousarray(b)
+    return feed
+
+
+def cpu_session(ort, model):
+    """An onnxruntime CPU session of ``model``, warnings off (log level 3: errors only)."""
+    options = ort.SessionOptions()
+    options.log_severity_level = 3
+    return ort.InferenceSession(model.SerializeToString(), options, providers=["CPUExecutionProvider"])
+
+
+class OnnxRuntimeAdapter(OnnxConvCalls):
     """A single-node ONNX model per geometry, run by onnxruntime's CPU provider."""
 
     name = "onnxruntime"
@@ -121,12 +155,7 @@ class OnnxRuntimeAdapter:
                  "pads": [lo for lo, _ in padding] + [hi for _, hi in padding]}
         if output_padding is not None:
             attrs["output_padding"] = list(output_padding)
-        model = self._model(op, dtype, ndim, attrs, has_bias)
-        options = self._ort.SessionOptions()
-        options.log_severity_level = 3
-        sess = self._ort.InferenceSession(model.SerializeToString(), options,
-                                          providers=["CPUExecutionProvider"])
-        self._sessions[key] = sess
+        sess = self._sessions[key] = cpu_session(self._ort, self._model(op, dtype, ndim, attrs, has_bias))
         return sess
 
     def _run(self, op, x, w, b, stride, padding, dilation, groups, output_padding=None):
@@ -135,26 +164,7 @@ class OnnxRuntimeAdapter:
                              tuple((int(lo), int(hi)) for lo, hi in padding),
                              tuple(int(d) for d in dilation), int(groups), b is not None,
                              None if output_padding is None else tuple(int(o) for o in output_padding))
-        feed = {"X": x, "W": np.ascontiguousarray(w)}
-        if b is not None:
-            feed["B"] = np.ascontiguousarray(b)
-        return sess.run(None, feed)[0]
-
-    # -- the call signature ----------------------------------------------------------
-    def forward(self, x, w, b, *, stride, padding, dilation, groups, layout="channels_first"):
-        _channels_first(layout)
-        return self._run("Conv", x, w, b, stride, padding, dilation, groups)
-
-    def transposed(self, x, w, b, *, stride, padding, dilation, groups, output_padding,
-                   layout="channels_first"):
-        _channels_first(layout)
-        return self._run("ConvTranspose", x, w, b, stride, padding, dilation, groups, output_padding)
-
-
-def _channels_first(layout: str):
-    if layout != "channels_first":
-        raise ValueError(f"onnxruntime adapter: layout={layout!r}, expected 'channels_first' "
-                         "(ONNX Conv is defined on NC(D)HW); transpose the arrays first")
+        return sess.run(None, conv_feed(x, w, b))[0]
 
 
 #: sessions kept per adapter (the most recently used ones)

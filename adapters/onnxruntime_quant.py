@@ -36,7 +36,7 @@ from convwitness.errors import AdapterUnavailable
 from convwitness.geometry.capabilities import Capabilities
 from convwitness.geometry.quant import QuantCapabilities
 
-from .onnxruntime_node import SessionCache      # sessions bounded: each owns a thread pool
+from .onnxruntime_node import SessionCache, cpu_session  # sessions bounded: each owns a thread pool
 
 __all__ = ["QuantOnnxRuntime"]
 
@@ -105,11 +105,7 @@ class QuantOnnxRuntime:
         graph = h.make_graph([node], "q", inputs, [out])
         model = h.make_model(graph, opset_imports=[h.make_opsetid("", OPSET)])
         model.ir_version = IR_VERSION
-        opts = self._ort.SessionOptions()
-        opts.log_severity_level = 3
-        sess = self._ort.InferenceSession(model.SerializeToString(), opts,
-                                          providers=["CPUExecutionProvider"])
-        self._sessions[key] = sess
+        sess = self._sessions[key] = cpu_session(self._ort, model)
         return sess
 
     def quantized(self, x, w, b, *, stride, padding, dilation, groups, x_scale, x_zero_point,
