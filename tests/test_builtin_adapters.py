@@ -479,8 +479,9 @@ def test_torch_float16_finding_case_gets_crash_verdict_exactly_when_torch_dies()
 
 
 def test_onnxruntime_sessions_stay_bounded_in_a_long_run():
-    """Each onnxruntime InferenceSession owns an intra-op thread pool (onnxruntime docs,
-    "Thread management": per-session thread pools unless global ones are set); with one
+    """Each onnxruntime InferenceSession owns an intra-op thread pool (per-session pools
+    unless global ones are set: onnxruntime docs, "Thread management", from memory; measured
+    here as one more live thread per session on 2 cores); with one
     session per geometry an unbounded cache ran a standard-profile run out of threads
     ("pthread_create failed ... Cannot allocate memory"; `convwitness run --adapter
     onnxruntime --profile standard --seed 1`, onnxruntime 1.32.0, this 2-core CPU machine).

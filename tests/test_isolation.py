@@ -202,7 +202,7 @@ def test_closing_an_arena_twice_leaves_later_files_alone(tmp_path):
 
 def test_an_allocation_refused_inside_the_port_names_the_memory_limit():
     """Under isolation the worker has a memory limit; a port that reports ENOMEM ("Cannot
-    allocate memory", POSIX errno 12) is told that the limit may be the cause, and how to
+    allocate memory", ENOMEM: errno.ENOMEM is 12 on Linux) is told that the limit may be the cause, and how to
     raise it (the error stays the port's: a raise, not a crash)."""
     import numpy as np
     from convwitness.boundary.isolation.client import load_isolated
