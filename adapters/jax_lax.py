@@ -98,6 +98,9 @@ class JaxAdapter:
             passes=frozenset({"forward", "transposed"}),
             stride=True, dilation=True, groups=True, bias=True, zero_batch=True,
             output_padding=True, deterministic=True,
+            # every geometry is traced and compiled once (jax.jit): the free search then
+            # stays on the covering schedule's geometries
+            compiles_per_shape=True,
             error_model=ErrorModel(note="XLA convolution at Precision.HIGHEST, summed in the case "
                                         "dtype; XLA on CPU flushes subnormals to zero"),
         )

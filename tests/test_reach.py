@@ -54,7 +54,11 @@ def test_coincidences_are_read_off_the_geometry():
     assert "coincidence:square_input" in reach_of(_spec(input_size=(5, 5), kernel_size=(3, 3)))
     assert "coincidence:square_input" not in reach_of(_spec(input_size=(5, 5)))     # k differs
     assert "coincidence:square_kernel" in reach_of(_spec(kernel_size=(2, 2)))
-    assert "coincidence:stride_equals_kernel" in reach_of(_spec(kernel_size=(2, 3), stride=(2, 3)))
+    # s == k > 1 on every axis of a square 2-D/3-D kernel (a patch embedding, BUG-CLASSES C27)
+    assert "coincidence:stride_equals_kernel" in reach_of(_spec(kernel_size=(2, 2), stride=(2, 2)))
+    assert "coincidence:stride_equals_kernel" not in reach_of(_spec(kernel_size=(2, 3), stride=(2, 3)))
+    assert "coincidence:stride_equals_kernel" not in reach_of(
+        _spec(input_size=(7,), kernel_size=(2,), stride=(2,)))
     # Relationship 15: L_out = floor((6 + 0 - 6)/1) + 1 = 1 and, with e = 2(4-1)+1 = 7,
     # floor((7 + 0 - 7)/1) + 1 = 1
     one = _spec(kernel_size=(6, 4), dilation=(1, 2))
@@ -64,6 +68,12 @@ def test_coincidences_are_read_off_the_geometry():
 
 def test_corners_are_read_off_the_geometry():
     assert "corner:negative_padding" in reach_of(_spec(padding=((-1, 0), (0, 0))))
+    # cropped on one side, padded on the other by no more than the crop (BUG-CLASSES C07:
+    # a read past the end lands on the cropped-away head)
+    assert "corner:crop_then_pad" in reach_of(_spec(padding=((-2, 1), (0, 0))))
+    assert "corner:crop_then_pad" not in reach_of(_spec(padding=((-1, 2), (0, 0))))
+    assert "corner:pad_then_crop" in reach_of(_spec(padding=((0, 0), (2, -2))))
+    assert not {"corner:crop_then_pad", "corner:pad_then_crop"} & reach_of(_spec(padding=((-1, -1), (0, 0))))
     assert "feature:zero_batch" in reach_of(_spec(batch=0))
     assert "feature:window_in_padding" in reach_of(_spec(padding=((3, 0), (0, 0))))  # p_lo >= e = 3
     # transposed, s = 3, d = 1: the largest legal output padding is max(s, d) - 1 = 2
@@ -270,6 +280,18 @@ def test_seed_matrix_of_coincidence_bugs_is_full():
     text = out.getvalue()
     assert rc == 0, text
     assert "4 of 4 (bug, seed) cells caught" in text
+
+
+def test_schedule_alone_catches_corner_and_patch_bugs_on_every_seed():
+    """With the free search kept on the schedule's geometries (compiles_per_shape), only
+    the schedule can catch a bug: negative padding read past the crop (BUG-CLASSES C07)
+    and the flattened-patch path of stride == kernel (C27) must be on its path."""
+    out = io.StringIO()
+    rc = selftest(seeds="0-4", only="negative_padding_wraps,patch_kernel_transposed",
+                  stdout=out, stderr=io.StringIO(), compiles_per_shape=True)
+    text = out.getvalue()
+    assert rc == 0, text
+    assert "10 of 10 (bug, seed) cells caught" in text and "compiles_per_shape" in text
 
 
 # -- the report's reach section -------------------------------------------------------------

@@ -40,8 +40,8 @@ GROUPINGS = ("single", "grouped", "depthwise", "depthwise_multiplier")
 #: outputs per group > 1); ``batch_equals_channels`` N == C_in; ``square_input`` every axis
 #: alike (square input, square kernel, same stride, dilation and padding);
 #: ``square_kernel`` equal kernel lengths > 1, the rest drawn per axis;
-#: ``stride_equals_kernel`` s == k > 1 (non-overlapping windows); ``output_one`` one output
-#: position per axis (the kernel covers the whole padded input)
+#: ``stride_equals_kernel`` s == k > 1 on every axis of a 2-D/3-D square kernel (patch
+#: embeddings); ``output_one`` one output position per axis
 COINCIDENCES = ("equal_channels", "batch_equals_channels", "square_input", "square_kernel",
                 "stride_equals_kernel", "output_one")
 
@@ -178,7 +178,7 @@ def coincidences_for(caps: Capabilities, needs: Needs, ndim: int, feature: str) 
         out.append("square_input")
     if ndim >= 2 and feature not in ("pointwise", "everyday"):
         out.append("square_kernel")
-    if caps.stride and needs.stride is not False and needs.dilation is not True and \
+    if ndim >= 2 and caps.stride and needs.stride is not False and needs.dilation is not True and \
             feature not in ("stride_over_kernel", "everyday", "pointwise", "dilated_strided"):
         out.append("stride_equals_kernel")
     if not needs.transposed and feature not in ("window_in_padding", "unit_length"):
@@ -356,7 +356,7 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
     if coincidence == "square_input":
         axes = [first] * ndim
     else:
-        kernel = first[1] if coincidence == "square_kernel" else None
+        kernel = first[1] if coincidence in ("square_kernel", "stride_equals_kernel") else None
         axes = [first] + [_axis(pick, feature, coincidence, caps, profile, needs, lmax, kernel)
                           for _ in range(ndim - 1)]
     # one draw in eight; 7, not 0, so that shrinking (toward 0) leaves the axis non-empty

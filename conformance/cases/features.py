@@ -93,7 +93,7 @@ def reach_of(spec: ConvSpec) -> set:
         c.add("square_input")
     if spec.ndim > 1 and len({k for _, k, *_ in ax}) == 1 and ax[0][1] > 1:
         c.add("square_kernel")
-    if all(s == k > 1 for _, k, s, *_ in ax):
+    if spec.ndim > 1 and all(s == k == ax[0][1] > 1 for _, k, s, *_ in ax):
         c.add("stride_equals_kernel")
     if conv and all(n == 1 for n in spec.output_size):
         c.add("output_one")
@@ -102,6 +102,12 @@ def reach_of(spec: ConvSpec) -> set:
     corners = set()
     if any(min(lo, hi) < 0 for *_, (lo, hi), _ in ax):
         corners.add("negative_padding")
+    # one side cropped, the other padded by no more than the crop: a read past the end
+    # (or before the start) then lands on cropped-away data, not on zeros (C07)
+    if any(lo < 0 < hi <= -lo for *_, (lo, hi), _ in ax):
+        corners.add("crop_then_pad")
+    if any(hi < 0 < lo <= -hi for *_, (lo, hi), _ in ax):
+        corners.add("pad_then_crop")
     if any(L == 0 for L, *_ in ax):
         corners.add("zero_spatial")
     if spec.transposed and any(op > 0 and op == max(s, d) - 1 for _, _, s, d, _, _, op in ax):

@@ -8,7 +8,8 @@ the seed, then hypothesis's free search (the runner adds them as ``@example``).
 
 The targets (:func:`targets`) are ``category:name`` tags, as :func:`reach_of` reads
 them off a spec: every feature, coincidence, channel structure, dtype, layout, ndim and
-claimed corner (negative padding; the largest legal output padding) the invariant can
+claimed corner (negative padding, an axis cropped on one side and padded on the other,
+either way round; the largest legal output padding) the invariant can
 draw, C_in on either side of the vector and tile widths (``width:``, with one group),
 and every value kind it allows (the dtype's range end is the ``near_max`` kind).
 The schedule is greedy: each entry forces one not-yet-reached value of every category
@@ -54,6 +55,8 @@ TRIES = 12              # seeded tries per forced combination
 
 # forced builder choices that produce a tag (tags not listed force their own label)
 _CORNER_FORCE = {"negative_padding": {"asymmetric": True, "pad_lo": "min", "pad": "min"},
+                 "crop_then_pad": {"asymmetric": True, "pad_lo": "min", "pad_hi": 1, "feature": "plain"},
+                 "pad_then_crop": {"asymmetric": True, "pad_lo": 1, "pad_hi": "min", "feature": "plain"},
                  "zero_spatial": {"zero_spatial": "max"},
                  "max_output_padding": {"output_padding": "max", "stride": "max"}}
 
@@ -98,6 +101,9 @@ def targets(caps: Capabilities, needs: Needs) -> list[str]:
     if "negative" in caps.padding and not needs.transposed and needs.negative_padding is not False \
             and needs.padding is not False:
         add("corner:negative_padding")
+        if "asymmetric" in caps.padding and needs.padding is not False:
+            add("corner:crop_then_pad")     # p_lo < 0 < p_hi on one axis, and mirrored
+            add("corner:pad_then_crop")
     if zero_spatial_allowed(caps, needs):
         add("corner:zero_spatial")
     if needs.transposed and caps.output_padding and (caps.stride or caps.dilation) \

@@ -35,7 +35,7 @@ from .profiles import get_profile
 from .values import fill
 
 __all__ = ["Needs", "FEATURES", "GROUPINGS", "COINCIDENCES", "specs", "cases", "examples",
-           "make_case"]
+           "examples_on", "make_case"]
 
 
 def _check_args(capabilities, profile, needs):
@@ -109,7 +109,17 @@ def specs(capabilities: Capabilities, profile="quick", needs: Needs | None = Non
 @st.composite
 def _cases(draw, caps, profile, needs, count):
     pick = _HypothesisPicker(draw)
-    spec = build_spec(pick, caps, profile, needs)
+    return _valued(pick, build_spec(pick, caps, profile, needs), needs, count)
+
+
+@st.composite
+def _cases_on(draw, specs, needs, count):
+    pick = _HypothesisPicker(draw)
+    return _valued(pick, pick.choice(specs, "geometry"), needs, count)
+
+
+def _valued(pick, spec, needs, count) -> tuple:
+    """``count`` cases of ``spec``, each of a drawn value kind and filling seed."""
     kinds = list(needs.kinds)
     out = []
     for i in range(count):
@@ -129,6 +139,18 @@ def examples(capabilities: Capabilities, profile="quick", needs: Needs | None = 
     """A strategy of tuples of ``profile.values`` Cases sharing one geometry."""
     profile, needs = _check_args(capabilities, profile, needs)
     return _cases(capabilities, profile, needs, profile.values)
+
+
+def examples_on(geometries, profile="quick", needs: Needs | None = None):
+    """A strategy of tuples of ``profile.values`` Cases on one of ``geometries`` (a
+    non-empty sequence of ConvSpecs, shrinking toward the first), with fresh values: the
+    free search of a port that compiles per shape, which adds no call signature."""
+    profile = get_profile(profile)
+    needs = needs if needs is not None else Needs()
+    geometries = tuple(geometries)
+    if not geometries:
+        raise SpecError("examples_on: no geometries to draw from; give at least one ConvSpec")
+    return _cases_on(geometries, needs, profile.values)
 
 
 def cases(capabilities: Capabilities, profile="quick", needs: Needs | None = None):

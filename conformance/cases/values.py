@@ -23,12 +23,13 @@ Special kinds (for the special-value invariants only): ``nan``, ``inf``,
 from __future__ import annotations
 
 import math
+import zlib
 
 import numpy as np
 
 from ..geometry.formats import get_format, numpy_dtype, to_format
 
-__all__ = ["NUMERIC_KINDS", "EXACT_KINDS", "SPECIAL_KINDS", "KINDS", "fill", "aux_rng"]
+__all__ = ["NUMERIC_KINDS", "EXACT_KINDS", "SPECIAL_KINDS", "KINDS", "fill", "aux_rng", "geometry_rng"]
 
 NUMERIC_KINDS = ("ones", "one_hot", "small_int", "pow2", "uniform", "wide", "near_max")
 EXACT_KINDS = ("ones", "one_hot", "small_int")
@@ -60,6 +61,14 @@ SALTS = {
 def aux_rng(seed: int, salt: int = 0) -> np.random.Generator:
     """The generator an invariant uses for auxiliary data (replayable from the case)."""
     return np.random.default_rng([int(seed) & 0xFFFFFFFF, salt])
+
+
+def geometry_rng(spec, salt: int = 0) -> np.random.Generator:
+    """The generator of a choice that belongs to the geometry, not to its values (which axis
+    to shift, which second geometry to call in between): a function of the geometry alone,
+    so every value set of a geometry makes the same calls (no call signature more for a port
+    that compiles per shape) and a witness replays it from its geometry."""
+    return np.random.default_rng([zlib.crc32(repr(spec).encode()), salt])
 
 
 def _draw(rng, kind: str, shape, fmt_name: str) -> np.ndarray:

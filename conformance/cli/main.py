@@ -42,6 +42,10 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--seed", type=int, default=0, help="hypothesis seed (default 0)")
     r.add_argument("--report", default=None, help="report folder (default reports/<adapter name>)")
     r.add_argument("--no-shrink", action="store_true", help="skip shrinking (faster, larger witnesses)")
+    r.add_argument("--compiles-per-shape", action="store_true",
+                   help="the port pays for each new call signature (JIT, accelerator compiler): "
+                        "the free search draws fresh values on the covering schedule's geometries, "
+                        "as when its capabilities declare compiles_per_shape=True")
     r.add_argument("--quiet", action="store_true", help="no progress lines")
     _isolation_options(r)
     r.add_argument("--invariant-budget", type=float, default=None, metavar="SECONDS",
@@ -69,6 +73,9 @@ def _parser() -> argparse.ArgumentParser:
     st.add_argument("--only", default=None, help="zoo entries to run (comma-separated names)")
     st.add_argument("--seeds", default=None, metavar="SEEDS",
                     help="run the zoo once per seed (e.g. 0-4 or 0,2,7) and print the bug × seed matrix")
+    st.add_argument("--compiles-per-shape", action="store_true",
+                    help="run every entry as a port that compiles per shape (free search on the "
+                         "covering schedule's geometries)")
     _extend_sub(sub)
     return p
 
@@ -200,8 +207,14 @@ def cmd_run(args, stdout, stderr) -> int:
     if args.report:
         _check_report_dir(args.report)
     if getattr(args, "cluster", None) is not None:
+        if args.compiles_per_shape:
+            raise ConvWitnessError(
+                "--compiles-per-shape is not passed on to cluster workers; declare "
+                "compiles_per_shape=True in the adapter's capabilities instead, or run without --cluster")
         return _run_on_cluster(args, profile, stdout, stderr)
     adapter = _load(args, profile)
+    if args.compiles_per_shape:
+        adapter.capabilities = adapter.capabilities.replace(compiles_per_shape=True)
     report_dir = args.report or os.path.join("reports", _safe(adapter.name))
     _check_report_dir(report_dir)
     progress = None if args.quiet else Progress(stderr)
@@ -295,7 +308,7 @@ def cmd_adapters(args, stdout, stderr) -> int:
 def cmd_selftest(args, stdout, stderr) -> int:
     from ..run.selftest import selftest
     return selftest(profile=args.profile, seed=args.seed, only=args.only, stdout=stdout, stderr=stderr,
-                    seeds=args.seeds)
+                    seeds=args.seeds, compiles_per_shape=args.compiles_per_shape)
 
 
 _HANDLERS = {"run": cmd_run, "replay": cmd_replay, "invariants": cmd_invariants, "rebuild": cmd_rebuild,

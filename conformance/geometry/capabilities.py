@@ -60,6 +60,10 @@ class Capabilities:
     (x, w, y). ``ieee_special`` claims IEEE-754 propagation of NaN and infinities.
     ``zero_spatial`` claims inputs with a zero-size spatial axis (every window then lies in
     the padding); off by default, so that no certificate covers them untested.
+    ``compiles_per_shape`` is not a claim but a cost: the port pays for each new call
+    signature (a JIT library, an accelerator compiler or emulator). Hypothesis's free
+    search then draws fresh values on the covering schedule's geometries instead of fresh
+    geometries (run/covering.py); the report says so.
     """
 
     ndims: frozenset = frozenset({1, 2, 3})
@@ -76,6 +80,7 @@ class Capabilities:
     output_padding: bool = True
     deterministic: bool = True
     ieee_special: bool = False
+    compiles_per_shape: bool = False
     max_elements: int | None = None
     error_model: ErrorModel = field(default_factory=ErrorModel)
     error_models: tuple = ()

@@ -14,7 +14,7 @@ import numpy as np
 from .evidence import Evidence, compare, combine
 from ..geometry.spec import ConvSpec
 from ..cases.strategies import Needs
-from ..cases.values import SALTS, aux_rng, fill
+from ..cases.values import SALTS, aux_rng, fill, geometry_rng
 from . import invariant
 from ..numerics import reference as ref
 from ._common import copies, overflow_possible, run_forward, self_bound
@@ -195,7 +195,7 @@ def translation(adapter, case, ctx):
     """With x'[..., i] = x[..., i + s] along one axis: f(x')[..., h] = f(x)[..., h + 1] for every
     h whose window lies right of the leading padding (h >= ceil(p_lo/s)), within both bounds."""
     spec = case.spec
-    rng = aux_rng(case.seed, SALTS["shift_axis"])
+    rng = geometry_rng(spec, SALTS["shift_axis"])
     axes = _shiftable(spec, adapter.capabilities)
     if not axes:
         return _skip("no axis can be shifted (two outputs, a shifted input admitted, a window "

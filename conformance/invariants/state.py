@@ -6,7 +6,7 @@ import numpy as np
 from ..errors import SpecError
 from .evidence import Evidence, compare, combine
 from ..cases.strategies import Needs
-from ..cases.values import SALTS, aux_rng
+from ..cases.values import SALTS, geometry_rng
 from . import invariant
 from ._common import copies, overflow_possible, pass_bound, run_forward
 
@@ -65,7 +65,7 @@ def repeatability(adapter, case, ctx):
     for r in range(max(1, ctx.profile.repeats - 1)):
         y_r = run_forward(adapter, spec, case.x, case.w, case.b)
         results.append(_repeat_check(adapter, spec, kept, y_r, bound, f"repeat {r + 2}"))
-    other = _other_geometry(spec, adapter, aux_rng(case.seed, SALTS["state_forward"]))
+    other = _other_geometry(spec, adapter, geometry_rng(spec, SALTS["state_forward"]))
     if other is not None:
         run_forward(adapter, other, case.x, case.w, case.b)
         y_again = run_forward(adapter, spec, case.x, case.w, case.b)
@@ -91,7 +91,7 @@ def backward_repeatability(adapter, case, ctx):
         bounds["grad_bias"] = pass_bound(adapter, spec, "grad_bias", arrays)[1]
     first = [None if g is None else g.copy() for g in adapter.backward(spec, *copies(case))]
     results = []
-    other = _other_geometry(spec, adapter, aux_rng(case.seed, SALTS["state_backward"]))
+    other = _other_geometry(spec, adapter, geometry_rng(spec, SALTS["state_backward"]))
     runs = max(1, ctx.profile.repeats - 1)
     for r in range(runs + (1 if other is not None else 0)):
         if other is not None and r == runs:

@@ -50,6 +50,10 @@ def render(doc: dict, report_dir: str | None = None) -> str:
              f"**{md_text(j.line(doc))}**",
              "",
              f"{len(doc['invariants'])} invariants · {doc['duration_s']:.1f} s"
+             + (f" · {doc['signatures']} distinct call signatures" if doc.get("signatures") else "")
+             + (" (the adapter compiles per shape: the free search drew fresh values on the "
+                "covering schedule's geometries)"
+                if a.get("capabilities", {}).get("compiles_per_shape") else "")
              + (f" · status {doc['status']}" + (f" (shard {md_text(doc['shard'])})" if doc.get("shard") else "")
                 if doc["status"] != "complete" else ""),
              ""]

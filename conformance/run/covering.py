@@ -3,7 +3,10 @@
 :func:`covering_examples` turns an invariant's schedule (:mod:`convwitness.cases.schedule`)
 into tuples of Cases that the runner and the generated suites add as ``@example``;
 :func:`run_schedules` builds the schedules of all admitted invariants over one run-wide
-pool of geometries; :func:`free_examples` is what is left to hypothesis's free search.
+pool of geometries; :func:`free_examples` is what is left to hypothesis's free search and
+:func:`free_strategy` what it draws from: fresh geometries, or, for a port that compiles
+per shape (``Capabilities.compiles_per_shape``), fresh values on the schedule's geometries,
+so that the free search adds no call signature.
 """
 from __future__ import annotations
 
@@ -14,7 +17,8 @@ import hypothesis
 from ..cases.profiles import Profile
 from ..invariants import Invariant, catalogue
 
-__all__ = ["covering_examples", "run_schedules", "free_examples", "with_examples"]
+__all__ = ["covering_examples", "run_schedules", "free_examples", "free_strategy",
+           "with_examples", "few_shapes"]
 
 _SCHEDULES: dict = {}
 
@@ -44,6 +48,23 @@ def free_examples(profile: Profile, explicit: list) -> int:
     """Hypothesis's free search after the schedule: the schedule's geometries replace part
     of it, never more than half."""
     return max(profile.examples - len(explicit), profile.examples // 2)
+
+
+def few_shapes(caps) -> bool:
+    """Whether the free search stays on the schedule's geometries (the port compiles per
+    shape)."""
+    return bool(getattr(caps, "compiles_per_shape", False))
+
+
+def free_strategy(caps, inv: Invariant, profile: Profile, explicit: list):
+    """What hypothesis's free search draws for ``inv``: its own strategy, or, for a port
+    that compiles per shape, fresh values on the geometries of ``explicit`` (the covering
+    schedule): every call signature of the free search is then one the schedule made."""
+    if few_shapes(caps) and explicit and inv.cases is None:
+        from ..cases.strategies import examples_on
+        geometries = list(dict.fromkeys(cases[0].spec for cases in explicit))
+        return examples_on(geometries, profile, inv.needs_for(inv.claims(caps)))
+    return inv.strategy(caps, profile)
 
 
 def with_examples(test, explicit: list):

@@ -8,7 +8,8 @@ failure's *region* excluded: every geometry that has all of the witness's distin
 features (:func:`region`, the features its minimal case could not shrink away, such as
 strided, dilated, grouped or depthwise, padded, zero batch). Each further failure found
 is a cause of its own, with its own witness (``witnesses/<id>.cause<k>.json``); its
-region is excluded in turn. The search ends when a rerun passes, when the witness has no
+region is excluded in turn, and so are the features it shares with an earlier region
+(the same bug found again with another padding shows that the padding was not needed). The search ends when a rerun passes, when the witness has no
 distinguishing feature (the bug is everywhere), or after ``further_causes`` reruns. Each
 rerun gets half the invariant's budget, at least 10 s, and a seed of its own.
 """
@@ -67,5 +68,8 @@ def search_further(adapter, inv, profile, first, *, seed, report_dir, shrink, re
                       "examples": res.examples})
         if not reg or reg in regions:
             break
-        regions.append(reg)
+        # a region that shares features with an earlier one shows those others were not
+        # needed (a padded minimal case, then a cropped one): exclude the shared core too
+        cores = [c for c in ({k: v for k, v in r.items() if reg.get(k) == v} for r in regions) if c]
+        regions.extend([reg] + [c for c in cores if c not in regions])
     return found

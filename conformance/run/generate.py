@@ -66,8 +66,13 @@ class Suite:
     def examples(self, inv_id: str):
         """The strategy ``run`` draws from for this invariant (tuples of Cases, one geometry):
         ``Invariant.strategy``, as the runner calls it (an invariant with its own ``cases``,
-        such as long_sum.* and quantized.*, draws from those)."""
-        return self.invariant(inv_id).strategy(self.adapter.capabilities, self.profile)
+        such as long_sum.* and quantized.*, draws from those). For a port that compiles
+        per shape, fresh values on the invariant's covering schedule, as in ``run``."""
+        from .covering import covering_examples, few_shapes, free_strategy
+        inv, caps = self.invariant(inv_id), self.adapter.capabilities
+        explicit = (covering_examples(inv.claims(caps), inv, self.profile, self.seed)
+                    if few_shapes(caps) else [])
+        return free_strategy(caps, inv, self.profile, explicit)
 
     def settings(self, test):
         """Apply the profile's hypothesis settings and the seed, as ``run`` does.

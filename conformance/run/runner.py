@@ -25,7 +25,7 @@ from ..invariants.evidence import Evidence, InvariantFailure, verdict_of as _ver
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
 from ..cases.features import geometry_tags
-from .covering import covering_examples, free_examples, with_examples
+from .covering import covering_examples, free_examples, free_strategy, with_examples
 from .signals import check as interruption_check
 
 __all__ = ["InvariantResult", "run_invariant", "select", "hypothesis_test", "BudgetExhausted",
@@ -135,6 +135,7 @@ class _Tally:
     def __init__(self):
         self.examples = 0
         self.geometries = 0
+        self.distinct: set = set()   # the distinct geometries checked (what the report counts)
         self.drawn = 0
         self.skipped = 0
         self.skip_reasons: Counter = Counter()
@@ -165,10 +166,14 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
     """The hypothesis test of one invariant on one adapter (call it to run)."""
     tally = tally if tally is not None else _Tally()
     context = context or Context(profile=profile)
-    strategy = inv.strategy(adapter.capabilities, profile)
+    explicit = covering_examples(inv.claims(adapter.capabilities), inv, profile, seed, tally)
+    strategy = free_strategy(adapter.capabilities, inv, profile, explicit)
 
     def geometry_checked(spec):
         tally.geometries += 1
+        if spec in tally.distinct:      # counted once, however often it is drawn
+            return
+        tally.distinct.add(spec)
         coverage, reach = geometry_tags(spec)
         tally.coverage.update(coverage)
         tally.reach.update(reach)
@@ -230,9 +235,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         if inv.steer:
             hypothesis.target(worst, label="share of bound")
 
-    test = given(strategy)(body)
-    explicit = covering_examples(inv.claims(adapter.capabilities), inv, profile, seed, tally)
-    test = with_examples(test, explicit)
+    test = with_examples(given(strategy)(body), explicit)
     free = free_examples(profile, explicit)
     tally.target = len(explicit) + free     # checked geometries: the schedule, then the free search
     test = hypothesis_settings(profile, database_dir, shrink=shrink, max_examples=free)(test)
@@ -326,7 +329,7 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
         text = drain()
         res.output = (res.output + text)[-20000:] if text else res.output[-20000:]
     res.duration_s = time.perf_counter() - t0
-    res.examples, res.geometries = tally.examples, tally.geometries
+    res.examples, res.geometries = tally.examples, len(tally.distinct)
     res.skipped = tally.skipped
     res.skip_reasons = [{"reason": why, "examples": n} for why, n in tally.skip_reasons.most_common(3)]
     res.shares = tally.shares

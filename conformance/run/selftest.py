@@ -72,14 +72,19 @@ def _entries(only: str | None):
 
 
 def run_zoo(profile="quick", seed: int | None = 0, only: str | None = None,
-            on_done=None, witnesses: bool = True) -> list[ZooOutcome]:
+            on_done=None, witnesses: bool = True,
+            compiles_per_shape: bool = False) -> list[ZooOutcome]:
     """Run the suite on every zoo entry and control; ``on_done(outcome)`` after each.
     With ``witnesses``, a caught bug's first catching invariant is run again with
-    shrinking and the local minimizing pass, and its witness kept."""
+    shrinking and the local minimizing pass, and its witness kept. With
+    ``compiles_per_shape``, every entry runs as a port that declares it (the free search
+    on the covering schedule's geometries)."""
     profile = get_profile(profile)
     outcomes = []
     for name, cls, control, bug_class in _entries(only):
         adapter = load_adapter(cls())
+        if compiles_per_shape:
+            adapter.capabilities = adapter.capabilities.replace(compiles_per_shape=True)
         t0 = time.perf_counter()
         _, results = certify(adapter, profile=profile, seed=seed, report_dir=None, shrink=False)
         out = ZooOutcome(name=name, bug_class=bug_class, control=control,
@@ -150,14 +155,16 @@ def seed_matrix(by_seed: dict) -> str:
     return "\n".join(lines)
 
 
-def _seeds_selftest(profile, seeds, only, stdout, stderr) -> int:
+def _seeds_selftest(profile, seeds, only, stdout, stderr, compiles_per_shape=False) -> int:
     t0 = time.perf_counter()
     by_seed = {}
     for sd in seeds:
-        by_seed[sd] = run_zoo(profile, sd, only, on_done=lambda o, sd=sd: print(
+        by_seed[sd] = run_zoo(profile, sd, only, compiles_per_shape=compiles_per_shape,
+                              on_done=lambda o, sd=sd: print(
             f"selftest: seed {sd}: {o.name}: {len(o.caught_by)} invariants flagged it "
             f"({o.seconds:.1f} s)", file=stderr))
-    print(f"seed × entry matrix ({get_profile(profile).name} profile, shrinking off): the number "
+    mode = ", every entry declaring compiles_per_shape" if compiles_per_shape else ""
+    print(f"seed × entry matrix ({get_profile(profile).name} profile, shrinking off{mode}): the number "
           f"of deciding invariants that caught each bug; -- a missed bug, !! a flagged control",
           file=stdout)
     print(seed_matrix(by_seed), file=stdout)
@@ -177,14 +184,14 @@ def _seeds_selftest(profile, seeds, only, stdout, stderr) -> int:
 
 
 def selftest(profile="quick", seed: int | None = 0, only: str | None = None,
-             stdout=None, stderr=None, seeds=None) -> int:
+             stdout=None, stderr=None, seeds=None, compiles_per_shape: bool = False) -> int:
     """Run the zoo and print the detection matrix; with ``seeds`` (a list or "0-4"), run
     it once per seed and print the bug × seed matrix instead."""
     stdout = stdout or sys.stdout
     stderr = stderr or sys.stderr
     if seeds is not None:
         seeds = parse_seeds(seeds) if isinstance(seeds, str) else list(seeds)
-        return _seeds_selftest(profile, seeds, only, stdout, stderr)
+        return _seeds_selftest(profile, seeds, only, stdout, stderr, compiles_per_shape)
     t0 = time.perf_counter()
 
     def tell(o: ZooOutcome):
@@ -192,7 +199,7 @@ def selftest(profile="quick", seed: int | None = 0, only: str | None = None,
             else (f"caught by {len(o.caught_by)}" if o.caught_by else "MISSED")
         print(f"selftest: {o.name}: {what} ({o.ran} invariants, {o.seconds:.1f} s)", file=stderr)
 
-    outcomes = run_zoo(profile, seed, only, on_done=tell)
+    outcomes = run_zoo(profile, seed, only, on_done=tell, compiles_per_shape=compiles_per_shape)
     print(detection_matrix(outcomes), file=stdout)
     missed = [o.name for o in outcomes if not o.control and not o.caught_by]
     flagged = [o for o in outcomes if o.control and o.caught_by]
