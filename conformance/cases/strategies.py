@@ -14,7 +14,7 @@ reads only padding); ``kernel_fills_input`` (L_out = 1); ``unit_length`` (L = 1)
 ``zero_batch`` (N = 0).
 Coincidences, with their own share of the draws and combined with the feature where
 compatible (:data:`~convwitness.cases.draw.COINCIDENCES`): C_in/G == C_out/G > 1, N == C_in,
-every axis alike, square kernels > 1, stride == kernel, one output position.
+every axis alike, square kernels > 1, stride == a square kernel (2-D/3-D), one output position.
 The geometry itself is built by :func:`convwitness.cases.draw.build_spec`, which the
 covering schedule (:mod:`convwitness.cases.schedule`) shares.
 Channel structure, drawn independently of the feature: one group, 1 < G < C_in,
