@@ -12,7 +12,7 @@ from ..geometry.spec import ConvSpec
 #: channel counts on either side of vector and tile widths (8, 16, 32): class C13
 THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
 
-__all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS"]
+__all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS", "empty_shape_tells"]
 
 
 def feature_of(spec: ConvSpec) -> dict:
@@ -36,6 +36,20 @@ def feature_of(spec: ConvSpec) -> dict:
         "bias": "bias" if spec.bias else "nobias",
         "transposed": "transposed" if spec.transposed else "conv",
     }
+
+
+def empty_shape_tells(spec: ConvSpec) -> bool:
+    """Whether an empty batch can show a wrong output shape: with N = 0 the output has no
+    values, only its shape, so it must differ from the input's shape, padded or not (an
+    implementation that returns a tensor shaped like its (padded) input, as tensorflow's
+    ``tf.nn.convolution`` did with batch 0, is then caught). True for N > 0."""
+    if spec.batch:
+        return True
+    y = tuple(spec.y_shape[1:])
+    padded = [L + lo + hi for L, (lo, hi) in zip(spec.input_size, spec.padding)]
+    if spec.layout == "channels_last":
+        return y not in (tuple(spec.x_shape[1:]), (*padded, spec.in_channels))
+    return y not in (tuple(spec.x_shape[1:]), (spec.in_channels, *padded))
 
 
 def _axes(spec: ConvSpec):
@@ -124,7 +138,8 @@ def reach_of(spec: ConvSpec) -> set:
 #: the value combinations the invariant admits (name -> the two feature_of keys)
 PAIRS = {"stride×dilation": ("stride", "dilation"), "groups×padding": ("groups", "padding"),
          "remainder×dilation": ("remainder", "dilation"), "layout×groups": ("layout", "groups"),
-         "groups×stride": ("groups", "stride"), "dtype×ndim": ("dtype", "ndim")}
+         "groups×stride": ("groups", "stride"), "batch×dtype": ("batch", "dtype"),
+         "dtype×ndim": ("dtype", "ndim")}
 
 
 def pair_tags(spec: ConvSpec) -> set:

@@ -19,7 +19,8 @@ no try reaches stays a hole, which the report names.
 
 Then the feature pairs of :data:`SCHEDULED_PAIRS` (``pair:`` tags, as
 :func:`~convwitness.cases.features.pair_tags` reads them): a bug that needs two features
-at once (a strided depthwise kernel, a dilated kernel with a stride remainder) is on
+at once (a strided depthwise kernel, a dilated kernel with a stride remainder, an empty
+batch in a dtype whose kernel mishandles it) is on
 every seed's path only if each admitted combination is scheduled, not left to the free
 search's odds. dtype×ndim is reported, not scheduled (it would multiply the geometries).
 """
@@ -38,7 +39,7 @@ __all__ = ["targets", "schedule", "value_kinds", "pair_space", "MAX_ENTRIES", "S
 MAX_ENTRIES = 24        # explicit geometries per invariant at most
 #: the feature pairs whose admitted combinations the schedule reaches (pair: tags)
 SCHEDULED_PAIRS = ("groups×stride", "stride×dilation", "remainder×dilation", "layout×groups",
-                   "groups×padding")
+                   "groups×padding", "batch×dtype")
 #: builder choices that give one value of a feature_of key (pair targets)
 _VALUE_FORCE = {
     ("stride", "strided"): {"stride": "max"}, ("stride", "unit"): {"stride": "min", "feature": "plain"},
@@ -50,6 +51,8 @@ _VALUE_FORCE = {
     ("padding", "asymmetric"): {"asymmetric": True, "pad_lo": "max", "pad_hi": 0, "feature": "plain"},
     ("padding", "negative"): {"asymmetric": True, "pad_lo": "min", "pad": "min", "feature": "plain"},
     ("remainder", "nonzero"): {"feature": "remainder"}, ("remainder", "zero"): {"stride": "min"},
+    ("batch", "zero"): {"feature": "zero_batch"}, ("batch", "one"): {"batch": 1},
+    ("batch", "many"): {"batch": "max"},
 }
 TRIES = 12              # seeded tries per forced combination
 
@@ -239,10 +242,19 @@ def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
     step = 0
     while remaining and len(specs) < MAX_ENTRIES:
         step += 1
-        tag = remaining.pop(0)
-        spec, new = _try(caps, profile, needs, _pair_force(tag), base + 20011 + step, {tag})
+        # as many unreached combinations at once as their forced choices agree, then the
+        # first one alone
+        forced: dict = {}
+        for tag in remaining:
+            f = _pair_force(tag)
+            if all(forced.get(k, v) == v for k, v in f.items()):
+                forced.update(f)
+        spec, new = _try(caps, profile, needs, forced, base + 20011 + step, set(remaining))
         if not new:
-            continue                    # not reachable under these needs: a hole in the pair %
+            tag = remaining.pop(0)
+            spec, new = _try(caps, profile, needs, _pair_force(tag), base + 40013 + step, {tag})
+            if not new:
+                continue                # not reachable under these needs: a hole in the pair %
         specs.append(spec)
         if pool is not None:
             pool.append((spec, frozenset(reach_of(spec))))
@@ -269,7 +281,10 @@ def _values(caps: Capabilities, needs: Needs) -> dict:
         pads += [k for k in ("symmetric", "asymmetric") if k in caps.padding]
         if "negative" in caps.padding and not needs.transposed and needs.negative_padding is not False:
             pads.append("negative")
+    zero = caps.zero_batch and needs.zero_batch is not False and needs.batch_min == 0
     return {
+        "batch": (["zero"] if zero else []) + ([] if needs.zero_batch else
+                                               ["one"] * (needs.batch_min <= 1) + ["many"]),
         "stride": (["unit"] if not needs.stride else []) + (["strided"] if stride else []),
         "dilation": (["none"] if not needs.dilation else []) + (["dilated"] if dil else []),
         "groups": sorted({grouping[g] for g in groupings_for(caps, needs)}),
