@@ -66,6 +66,44 @@ def test_coincidences_are_read_off_the_geometry():
     assert not {t for t in reach_of(_spec()) if t.startswith("coincidence:")}
 
 
+def test_equalities_count_only_where_they_can_show_an_exchange():
+    """An exchange of two equal axes is invisible when only one position of them is read,
+    or when some kernel taps never meet the data (zoo classes C27/C05 of BUG-CLASSES.md;
+    the tap positions o*s - p_lo + t*d are those of Dumoulin & Visin 2016, section 2)."""
+    # 1x1x1 input, k = s = 2, p_lo = 1: only tap 1 of each axis reads the one element
+    one = _spec(input_size=(1, 1, 1), kernel_size=(2, 2, 2), stride=(2, 2, 2),
+                padding=((1, 0), (1, 0), (1, 0)))
+    assert not {"coincidence:stride_equals_kernel", "coincidence:square_kernel"} & reach_of(one)
+    # 5x5, k = 1, s = 2, p = (1, -2): only position 1 of each axis is read
+    diag = _spec(input_size=(5, 5), kernel_size=(1, 1), stride=(2, 2), padding=((1, -2), (1, -2)))
+    assert "coincidence:square_input" not in reach_of(diag)
+    assert "coincidence:square_input" in reach_of(_spec(input_size=(5, 5), kernel_size=(1, 1),
+                                                        stride=(2, 2)))
+
+
+def test_drawn_geometries_read_their_input_and_empty_batches_show_their_shape():
+    """No drawn geometry has every output equal to the bias alone (every tap in padding,
+    here p_lo = 1, d = 2, k = 3 over one element: taps at -1, 1, 3), and an empty batch
+    differs in output shape from its input, padded or not (tensorflow-cpu 2.21.0 returned
+    the padded input's shape for N = 0: README findings, scripts/probe_tensorflow.py)."""
+    from convwitness.cases.features import empty_shape_tells, reads_input
+    assert not reads_input(_spec(input_size=(1, 4), kernel_size=(3, 1), dilation=(2, 1),
+                                 padding=((1, 3), (0, 0))))
+    assert reads_input(_spec())
+    assert not empty_shape_tells(_spec(batch=0, in_channels=3, out_channels=3, input_size=(4, 4),
+                                       kernel_size=(1, 1)))
+    # the output (0, 3, 5, 4) has the padded input's shape
+    assert not empty_shape_tells(_spec(batch=0, in_channels=3, out_channels=3, input_size=(4, 4),
+                                       kernel_size=(1, 1), padding=((0, 1), (0, 0))))
+    assert empty_shape_tells(_spec(batch=0, in_channels=3, out_channels=5))
+    caps = load_adapter("reference").capabilities
+    for inv in catalogue():
+        if inv.refusal(caps) or inv.cases is not None:
+            continue
+        for sp in schedule(caps, QUICK, inv.needs_for(caps), seed=0, salt=inv.id):
+            assert reads_input(sp) and empty_shape_tells(sp), (inv.id, sp.describe())
+
+
 def test_corners_are_read_off_the_geometry():
     assert "corner:negative_padding" in reach_of(_spec(padding=((-1, 0), (0, 0))))
     # cropped on one side, padded on the other by no more than the crop (BUG-CLASSES C07:

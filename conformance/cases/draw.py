@@ -23,7 +23,7 @@ from ..errors import SpecError
 from ..geometry.capabilities import Capabilities
 from ..geometry.formats import STORAGE_FORMATS, available
 from ..geometry.spec import ConvSpec
-from .features import THRESHOLD_COUNTS, empty_shape_tells
+from .features import THRESHOLD_COUNTS, empty_shape_tells, reads_input
 from .profiles import Profile
 from .values import KINDS, NUMERIC_KINDS
 
@@ -384,7 +384,7 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
     except SpecError:
         pick.reject()
         raise
-    if not caps.admits(spec) or not empty_shape_tells(spec) or max(
+    if not caps.admits(spec) or not empty_shape_tells(spec) or not reads_input(spec) or max(
             math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) > profile.max_elements:
         pick.reject()
     if needs.applies is not None and not needs.applies(spec, caps):
@@ -413,6 +413,7 @@ def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs
                            (needs.ndims, spec.ndim)):
         if allowed is not None and value not in allowed:
             return False
-    return caps.admits(spec) and empty_shape_tells(spec) and spec.dtype in dtypes_for(caps, needs) and max(
+    return caps.admits(spec) and empty_shape_tells(spec) and reads_input(spec) and \
+        spec.dtype in dtypes_for(caps, needs) and max(
         math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements \
         and (needs.applies is None or needs.applies(spec, caps))

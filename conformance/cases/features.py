@@ -12,7 +12,8 @@ from ..geometry.spec import ConvSpec
 #: channel counts on either side of vector and tile widths (8, 16, 32): class C13
 THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
 
-__all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS", "empty_shape_tells"]
+__all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS", "empty_shape_tells",
+           "reads_input"]
 
 
 def feature_of(spec: ConvSpec) -> dict:
@@ -50,6 +51,35 @@ def empty_shape_tells(spec: ConvSpec) -> bool:
     if spec.layout == "channels_last":
         return y not in (tuple(spec.x_shape[1:]), (*padded, spec.in_channels))
     return y not in (tuple(spec.x_shape[1:]), (spec.in_channels, *padded))
+
+
+def reads_input(spec: ConvSpec) -> bool:
+    """Whether some output of a (non-transposed) convolution reads an input element: on
+    every axis some window has a tap inside the input. If not, every output is the bias
+    alone (every tap in the padding, or dilated taps stepping over the data) and the
+    geometry says nothing about how the data is read, whatever its features (a zero-size
+    axis is the corner that means it, and is let through)."""
+    return 0 in spec.input_size or all(_taps_reading(spec))
+
+
+def _taps_reading(spec: ConvSpec) -> list[int]:
+    """Per axis, how many kernel taps read an input element in some output (all of them
+    for a transposed convolution, which scatters every input through every tap)."""
+    if spec.transposed:
+        return list(spec.kernel_size)
+    return [sum(any(0 <= o * s - lo + t * d < L for o in range(n)) for t in range(k))
+            for L, k, s, d, (lo, _), n in zip(spec.input_size, spec.kernel_size, spec.stride,
+                                               spec.dilation, spec.padding, spec.output_size)]
+
+
+def _positions_read(spec: ConvSpec) -> int:
+    """How many positions of the first spatial axis some output reads (its length for a
+    transposed convolution)."""
+    L, k, s, d, (lo, _), n = (spec.input_size[0], spec.kernel_size[0], spec.stride[0],
+                              spec.dilation[0], spec.padding[0], spec.output_size[0])
+    if spec.transposed:
+        return L
+    return len({o * s - lo + t * d for o in range(n) for t in range(k)} & set(range(L)))
 
 
 def _axes(spec: ConvSpec):
@@ -103,11 +133,14 @@ def reach_of(spec: ConvSpec) -> set:
         c.add("equal_channels")
     if spec.batch and spec.batch == spec.in_channels:
         c.add("batch_equals_channels")
-    if spec.ndim > 1 and len({a[:4] + a[5:] for a in ax}) == 1:
+    # the axis and kernel equalities count only where they can show an exchange: more
+    # than one input position, and every kernel tap reading data somewhere
+    if spec.ndim > 1 and len({a[:4] + a[5:] for a in ax}) == 1 and _positions_read(spec) > 1:
         c.add("square_input")
-    if spec.ndim > 1 and len({k for _, k, *_ in ax}) == 1 and ax[0][1] > 1:
+    full = _taps_reading(spec) == list(spec.kernel_size)
+    if spec.ndim > 1 and len({k for _, k, *_ in ax}) == 1 and ax[0][1] > 1 and full:
         c.add("square_kernel")
-    if spec.ndim > 1 and all(s == k == ax[0][1] > 1 for _, k, s, *_ in ax):
+    if spec.ndim > 1 and all(s == k == ax[0][1] > 1 for _, k, s, *_ in ax) and full:
         c.add("stride_equals_kernel")
     if conv and all(n == 1 for n in spec.output_size):
         c.add("output_one")

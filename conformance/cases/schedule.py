@@ -263,11 +263,23 @@ def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
     return specs
 
 
+#: kinds of random values, which show a permuted channel, tap or sample ("ones" does not)
+GENERIC_KINDS = ("uniform", "small_int", "wide", "pow2")
+
+
 def value_kinds(needs: Needs, entries: int, per_entry: int) -> list[list[str]]:
-    """The value kinds of each entry's cases: every allowed kind, in turn."""
+    """The value kinds of each entry's cases. With two or more value sets per geometry,
+    the first is random values of a generic kind (so that every scheduled geometry is
+    seen with values that show an exchanged channel or tap), the others every allowed
+    kind in turn; with one, every allowed kind in turn."""
     kinds = list(needs.kinds)
-    return [[kinds[(i * per_entry + j) % len(kinds)] for j in range(per_entry)]
-            for i in range(entries)]
+    generic = next((k for k in GENERIC_KINDS if k in kinds), None)
+    if per_entry < 2 or generic is None:
+        return [[kinds[(i * per_entry + j) % len(kinds)] for j in range(per_entry)]
+                for i in range(entries)]
+    rest = [k for k in kinds if k != generic] or kinds
+    n = per_entry - 1
+    return [[generic] + [rest[(i * n + j) % len(rest)] for j in range(n)] for i in range(entries)]
 
 
 def _values(caps: Capabilities, needs: Needs) -> dict:
