@@ -10,9 +10,11 @@ import copy
 import io
 import json
 import os
+import re
 import xml.etree.ElementTree as ET
 from html.parser import HTMLParser
 
+import numpy as np
 import pytest
 
 from convwitness.cli.main import parse_args, run
@@ -151,9 +153,11 @@ def test_html_prints_small_witness_arrays_from_the_npz(reports):
     for name in ("x", "w", "b"):
         a = getattr(case, name)
         assert f"<b>{name}</b> · shape {tuple(a.shape)}" in block
-        # every value of a small array is printed (numpy prints 1.0 as "1.")
-        for v in a.ravel()[:8]:
-            assert f"{float(v):g}" in block
+        # every value of a small array is printed, as numpy prints it (1.0 as "1."; a
+        # float32 with its shortest round-trip digits): read back, they are the array
+        pre = block.split(f"<b>{name}</b>", 1)[1].split("<pre>", 1)[1].split("</pre>", 1)[0]
+        shown = [float(t) for t in re.findall(r"[-+]?(?:\d+\.?\d*|\.\d+)(?:e[-+]?\d+)?|nan|inf", pre)]
+        assert np.array_equal(np.asarray(shown, dtype=a.dtype), a.ravel()), (name, pre)
     assert "not beside this report" in witness_arrays(r["witness"], "/nonexistent", r["passes"])
 
 
