@@ -67,9 +67,18 @@ def _taps_reading(spec: ConvSpec) -> list[int]:
     for a transposed convolution, which scatters every input through every tap)."""
     if spec.transposed:
         return list(spec.kernel_size)
-    return [sum(any(0 <= o * s - lo + t * d < L for o in range(n)) for t in range(k))
-            for L, k, s, d, (lo, _), n in zip(spec.input_size, spec.kernel_size, spec.stride,
-                                               spec.dilation, spec.padding, spec.output_size)]
+    out = []
+    for L, k, s, d, (lo, _), n in zip(spec.input_size, spec.kernel_size, spec.stride,
+                                      spec.dilation, spec.padding, spec.output_size):
+        # tap t reads position o*s + c, c = t*d - lo: the first output at or past the
+        # input's start is o = max(0, ceil(-c / s)); it reads data if it exists and is < L
+        count = 0
+        for t in range(k):
+            c = t * d - lo
+            o = max(0, -(c // s))
+            count += o < n and o * s + c < L
+        out.append(count)
+    return out
 
 
 def _positions_read(spec: ConvSpec) -> int:
