@@ -9,9 +9,10 @@ features (:func:`region`, the features its minimal case could not shrink away, s
 strided, dilated, grouped or depthwise, padded, zero batch). Each further failure found
 is a cause of its own, with its own witness (``witnesses/<id>.cause<k>.json``); its
 region is excluded in turn, and so are the features it shares with an earlier region
-(the same bug found again with another padding shows that the padding was not needed). The search ends when a rerun passes, when the witness has no
-distinguishing feature (the bug is everywhere), or after ``further_causes`` reruns. Each
-rerun gets half the invariant's budget, at least 10 s, and a seed of its own.
+(the same bug found again with another padding shows that the padding was not needed).
+The search ends when a rerun passes, when the witness has no distinguishing feature (the
+bug is everywhere), or after ``further_causes`` reruns. Each rerun gets half the
+invariant's budget, at least 10 s, and a seed of its own.
 """
 from __future__ import annotations
 
