@@ -384,12 +384,16 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
     except SpecError:
         pick.reject()
         raise
-    if not caps.admits(spec) or not empty_shape_tells(spec) or not reads_input(spec) or max(
-            math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) > profile.max_elements:
-        pick.reject()
-    if needs.applies is not None and not needs.applies(spec, caps):
+    if not _usable(spec, caps, profile, needs):
         pick.reject()
     return spec
+
+
+def _usable(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
+    """Claimed, within the element budget, able to show a bug (features.py), and applies."""
+    return caps.admits(spec) and empty_shape_tells(spec) and reads_input(spec) and max(
+        math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements \
+        and (needs.applies is None or needs.applies(spec, caps))
 
 
 def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
@@ -413,7 +417,4 @@ def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs
                            (needs.ndims, spec.ndim)):
         if allowed is not None and value not in allowed:
             return False
-    return caps.admits(spec) and empty_shape_tells(spec) and reads_input(spec) and \
-        spec.dtype in dtypes_for(caps, needs) and max(
-        math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements \
-        and (needs.applies is None or needs.applies(spec, caps))
+    return spec.dtype in dtypes_for(caps, needs) and _usable(spec, caps, profile, needs)
