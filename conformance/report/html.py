@@ -19,6 +19,7 @@ import os
 
 from .outputs import FAILING, headline, is_failure, label, share_text
 from .verdicts import judge, word, worst_text
+from .reach import shapes_text
 
 __all__ = ["render"]
 
@@ -377,7 +378,7 @@ def render(doc: dict, report_dir: str | None = None) -> str:
     title = f'convwitness · {a["name"]} {a["version"]} · {headline(doc)}'
     body = [_header(doc), "<main>", _failures(doc), _overview(doc),
             '<section id="coverage"><h2>Coverage of geometry features</h2>', coverage_chart(doc),
-            "</section>"]
+            f"<p>{esc(shapes_text(doc))}</p>" if shapes_text(doc) else "", "</section>"]
     body += [_invariant(r, report_dir) for r in doc["invariants"]
              if word(r) not in ("not-applicable", "unavailable")]
     body += [_not_applicable(doc), _environment(doc), "</main>",

@@ -10,7 +10,7 @@ from __future__ import annotations
 import re
 
 from .verdicts import judge, label, worst_text
-from .reach import markdown_lines as reach_lines
+from .reach import markdown_lines as reach_lines, shapes_text
 
 __all__ = ["render", "md_text", "md_code"]
 
@@ -50,10 +50,7 @@ def render(doc: dict, report_dir: str | None = None) -> str:
              f"**{md_text(j.line(doc))}**",
              "",
              f"{len(doc['invariants'])} invariants · {doc['duration_s']:.1f} s"
-             + (f" · {doc['signatures']} distinct call signatures" if doc.get("signatures") else "")
-             + (" (the adapter compiles per shape: the free search drew fresh values on the "
-                "covering schedule's geometries)"
-                if a.get("capabilities", {}).get("compiles_per_shape") else "")
+             + (f" · {md_text(shapes_text(doc))}" if shapes_text(doc) else "")
              + (f" · status {doc['status']}" + (f" (shard {md_text(doc['shard'])})" if doc.get("shard") else "")
                 if doc["status"] != "complete" else ""),
              ""]

@@ -9,7 +9,7 @@ the count of examples that reached each tag. This module turns that into the rep
 """
 from __future__ import annotations
 
-__all__ = ["invariant_reach", "summarize", "markdown_lines"]
+__all__ = ["invariant_reach", "summarize", "markdown_lines", "shapes_text"]
 
 
 def invariant_reach(reach: dict) -> dict:
@@ -61,3 +61,15 @@ def markdown_lines(doc: dict) -> list[str]:
         lines += (["", "Feature pairs, lowest coverage over invariants: "
                    + ", ".join(f"{n} {low[n]:g}%" for n in names)] if names else [])
     return lines + [""]
+
+
+def shapes_text(doc: dict) -> str:
+    """How many distinct call signatures the run made, and whether the free search stayed
+    on the covering schedule's geometries (the adapter compiles per shape): one sentence
+    that summary.md and report.html both print ("" when the report has no count)."""
+    if not doc.get("signatures"):
+        return ""
+    caps = doc.get("adapter", {}).get("capabilities") or {}
+    return (f"{doc['signatures']} distinct call signatures"
+            + (" (the adapter compiles per shape: the free search drew fresh values on the "
+               "covering schedule's geometries)" if caps.get("compiles_per_shape") else ""))
