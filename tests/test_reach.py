@@ -81,6 +81,27 @@ def test_equalities_count_only_where_they_can_show_an_exchange():
                                                         stride=(2, 2)))
 
 
+def test_tap_counts_agree_with_the_definition():
+    """The taps counted as reading data are those with some output o in [0, L_out) whose
+    input index o*s - p_lo + t*d lies in [0, L) (the index of tap t of output o, Dumoulin &
+    Visin 2016, section 2): the closed form of features.py against the definition."""
+    import random
+    from convwitness.cases.features import _taps_reading
+    rng, checked = random.Random(7), 0
+    for _ in range(3000):
+        L, k, s, d = rng.randint(1, 9), rng.randint(1, 4), rng.randint(1, 4), rng.randint(1, 3)
+        lo, hi = rng.randint(-2, 4), rng.randint(-2, 4)
+        try:
+            sp = _spec(input_size=(L,), kernel_size=(k,), stride=(s,), dilation=(d,), padding=((lo, hi),))
+        except ConvWitnessError:
+            continue                    # no output: not a geometry
+        n = sp.output_size[0]
+        brute = sum(any(0 <= o * s - lo + t * d < L for o in range(n)) for t in range(k))
+        assert _taps_reading(sp) == [brute], sp.describe()
+        checked += 1
+    assert checked > 1000
+
+
 def test_drawn_geometries_read_their_input_and_empty_batches_show_their_shape():
     """No drawn geometry has every output equal to the bias alone (every tap in padding,
     here p_lo = 1, d = 2, k = 3 over one element: taps at -1, 1, 3), and an empty batch
