@@ -8,7 +8,7 @@ Features (per spatial axis unless said): ``plain``; ``remainder``
 ((L + p_lo + p_hi - e) mod s != 0); ``stride_over_kernel`` (s > e);
 ``anisotropic`` (axes differ in k, s, d, p and size); ``pad_before`` / ``pad_after``
 (asymmetric padding, each order); ``window_in_padding`` (p_lo >= e: the first window
-reads only padding); ``kernel_fills_input`` (L_out = 1); ``unit_length`` (L = 1);
+reads only padding); ``kernel_fills_input`` (L_out = 1); ``unit_length`` (L = 1 on the first axis);
 ``pointwise`` (1x1 kernels); ``dilated_strided`` (d >= 2 with s >= 2); ``everyday`` (3-tap kernels, stride
 1, no dilation, padding 0 or 1: the shape fast paths such as Winograd serve);
 ``zero_batch`` (N = 0).
@@ -24,6 +24,8 @@ then kept small enough for the profile's element budget).
 """
 from __future__ import annotations
 
+from contextlib import contextmanager
+
 from hypothesis import assume, strategies as st
 
 from ..geometry.capabilities import Capabilities
@@ -35,7 +37,7 @@ from .profiles import get_profile
 from .values import fill
 
 __all__ = ["Needs", "FEATURES", "GROUPINGS", "COINCIDENCES", "specs", "cases", "examples",
-           "examples_on", "make_case"]
+           "examples_on", "make_case", "independent_of_loaded_modules"]
 
 
 def _check_args(capabilities, profile, needs):
@@ -95,26 +97,117 @@ class _HypothesisPicker:
         assume(False)
 
 
-@st.composite
-def _spec(draw, caps, profile, needs):
-    return build_spec(_HypothesisPicker(draw), caps, profile, needs)
+class _ChoicePicker(_HypothesisPicker):
+    """The same choices made on hypothesis's choice sequence itself
+    (``ConjectureData.draw_integer`` / ``draw_boolean``, which ``st.integers`` and
+    ``st.booleans`` call): the same values, drawn and shrunk the same way, without a
+    strategy and a span around each of a geometry's 25 or so choices, which cost about
+    half of each example's drawing (``python -m convwitness.bench harness``). Those are
+    hypothesis internals, so :func:`_direct` checks for them first, and the strategies
+    fall back to :class:`_HypothesisPicker` (public ``draw``) where they are missing."""
+
+    def __init__(self, data):
+        self.data = data
+
+    def int(self, lo, hi, label):
+        # (st.integers weights the ends of ranges over 127 long; the one such range here
+        # is a value set's filling seed, whose ends mean nothing, and the ``weights``
+        # argument changed form across hypothesis versions: not passed)
+        return self.data.draw_integer(lo, hi)
+
+    def choice(self, seq, label):
+        seq = seq if isinstance(seq, (list, tuple)) else list(seq)
+        if len(seq) == 1:
+            return seq[0]
+        return seq[self.data.draw_integer(0, len(seq) - 1)]    # as st.sampled_from
+
+    def bool(self, label):
+        return self.data.draw_boolean()
+
+
+def _direct() -> bool:
+    """Whether this hypothesis offers the choice methods :class:`_ChoicePicker` uses."""
+    try:
+        from hypothesis.internal.conjecture.data import ConjectureData
+    except ImportError:                 # pragma: no cover - a hypothesis without them
+        return False
+    return all(callable(getattr(ConjectureData, m, None)) for m in ("draw_integer", "draw_boolean"))
+
+
+DIRECT = _direct()
+
+
+class _NoConstants:
+    """An empty pool of source-code constants (``set_for_type`` is all hypothesis asks)."""
+
+    def set_for_type(self, choice_type):
+        return ()
+
+
+@contextmanager
+def independent_of_loaded_modules():
+    """Hypothesis's draws made independent of which modules this process has imported.
+
+    Recent hypothesis versions draw, in about one integer in twenty, a constant taken from
+    the source of every *local* module loaded (outside site-packages and the standard
+    library: the adapter's own file, convwitness when installed editable, anything else
+    imported). One seed's free search then depends on what else the process imported: a
+    run on a cluster worker and the same run in a CLI or pytest process draw different
+    geometries. Inside this context that local pool is empty (hypothesis's own global
+    constants stay). Internals again: where they are missing (older hypothesis, which has
+    no such pool) this does nothing."""
+    try:
+        from hypothesis.internal.conjecture import providers
+        saved, cache = providers._get_local_constants, providers.CONSTANTS_CACHE
+    except (ImportError, AttributeError):
+        yield
+        return
+    providers._get_local_constants = _NoConstants
+    cache.cache.clear()
+    try:
+        yield
+    finally:
+        providers._get_local_constants = saved
+        cache.cache.clear()
+
+
+class _Built(st.SearchStrategy):
+    """A strategy that runs ``build(pick, *args)`` with a :class:`_ChoicePicker`."""
+
+    def __init__(self, build, *args):
+        super().__init__()
+        self.build, self.args = build, args
+
+    def do_draw(self, data):
+        return self.build(_ChoicePicker(data), *self.args)
+
+    def __repr__(self):
+        return f"convwitness.{self.build.__name__.strip('_')}(...)"
+
+
+def _strategy(build, *args):
+    """``build(pick, *args)`` as a strategy: on the choice sequence where this hypothesis
+    allows it, else through ``st.composite``'s public ``draw``."""
+    if DIRECT:
+        return _Built(build, *args)
+    return st.composite(lambda draw: build(_HypothesisPicker(draw), *args))()
+
+
+def _spec(pick, caps, profile, needs):
+    return build_spec(pick, caps, profile, needs)
 
 
 def specs(capabilities: Capabilities, profile="quick", needs: Needs | None = None):
     """A strategy of ConvSpecs inside ``capabilities`` that meet ``needs``."""
     profile, needs = _check_args(capabilities, profile, needs)
-    return _spec(capabilities, profile, needs)
+    return _strategy(_spec, capabilities, profile, needs)
 
 
-@st.composite
-def _cases(draw, caps, profile, needs, count):
-    pick = _HypothesisPicker(draw)
+def _cases(pick, caps, profile, needs, count):
     return _valued(pick, build_spec(pick, caps, profile, needs), needs, count)
 
 
-@st.composite
-def _cases_on(draw, specs, needs, count):
-    pick = _HypothesisPicker(draw)
+def _cases_on(pick, specs, needs, count):
     return _valued(pick, pick.choice(specs, "geometry"), needs, count)
 
 
@@ -138,7 +231,7 @@ def make_case(spec, kind: str, seed: int) -> Case:
 def examples(capabilities: Capabilities, profile="quick", needs: Needs | None = None):
     """A strategy of tuples of ``profile.values`` Cases sharing one geometry."""
     profile, needs = _check_args(capabilities, profile, needs)
-    return _cases(capabilities, profile, needs, profile.values)
+    return _strategy(_cases, capabilities, profile, needs, profile.values)
 
 
 def examples_on(geometries, profile="quick", needs: Needs | None = None):
@@ -150,10 +243,10 @@ def examples_on(geometries, profile="quick", needs: Needs | None = None):
     geometries = tuple(geometries)
     if not geometries:
         raise SpecError("examples_on: no geometries to draw from; give at least one ConvSpec")
-    return _cases_on(geometries, needs, profile.values)
+    return _strategy(_cases_on, geometries, needs, profile.values)
 
 
 def cases(capabilities: Capabilities, profile="quick", needs: Needs | None = None):
     """A strategy of single Cases."""
     profile, needs = _check_args(capabilities, profile, needs)
-    return _cases(capabilities, profile, needs, 1).map(lambda t: t[0])
+    return _strategy(_cases, capabilities, profile, needs, 1).map(lambda t: t[0])

@@ -105,11 +105,13 @@ class Suite:
         @functools.wraps(test)
         def run_test(*args, **kwargs):
             import pytest
+            from ..cases.strategies import independent_of_loaded_modules
             from .runner import Enough
             self._failure = None
             self._checked = {}
             try:
-                test(*args, **kwargs)
+                with independent_of_loaded_modules():   # as `run` draws
+                    test(*args, **kwargs)
             except Enough:
                 return None
             except Unsatisfiable as exc:      # `run` reports this as not-applicable

@@ -1,8 +1,7 @@
 """The runner: every applicable invariant, driven by hypothesis, into results.
 
 One execution path: ``convwitness run`` and the generated pytest suites both call
-:func:`hypothesis_test` (the same strategies, settings and seed) and
-:meth:`Invariant.check`.
+:func:`hypothesis_test` (the same strategies, settings and seed) and :meth:`Invariant.check`.
 """
 from __future__ import annotations
 
@@ -25,6 +24,7 @@ from ..invariants.evidence import Evidence, InvariantFailure, verdict_of as _ver
 from ..invariants import Context, Invariant, catalogue
 from ..cases.profiles import Profile, get_profile
 from ..cases.features import geometry_tags
+from ..cases.strategies import independent_of_loaded_modules
 from .covering import covering_examples, free_examples, free_strategy, with_examples
 from .signals import check as interruption_check
 
@@ -268,7 +268,7 @@ def run_invariant(adapter, inv: Invariant, profile, *, seed: int | None = 0,
     t0 = time.perf_counter()
     try:
         try:
-            with warnings.catch_warnings():
+            with warnings.catch_warnings(), independent_of_loaded_modules():
                 # overflow and invalid-value warnings are expected on near-maximal and
                 # special data; the evidence, not the warning, decides
                 warnings.simplefilter("ignore", RuntimeWarning)
