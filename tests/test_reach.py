@@ -102,6 +102,44 @@ def test_tap_counts_agree_with_the_definition():
     assert checked > 1000
 
 
+def test_a_stride_joins_a_pair_only_with_a_window_that_reads_data():
+    # A strided depthwise weight gradient that drops its last kernel row (pytorch#50042,
+    # BUG-CLASSES C02) shows only with kernel rows > 1 whose taps read data; a one-tap axis
+    # reads each input once whatever the stride (common practice, no source).
+    from convwitness.cases.features import pair_tags
+    tag = "pair:groups×stride=depthwise×strided"
+    dw = dict(in_channels=4, out_channels=4, groups=4, stride=(2, 2), input_size=(7, 7))
+    assert tag in pair_tags(_spec(kernel_size=(3, 3), **dw))
+    assert tag not in pair_tags(_spec(kernel_size=(1, 3), **dw))
+    # p_lo = 4 over one row (k = 3, s = 2): two windows, and only the last tap ever reads data
+    assert tag not in pair_tags(_spec(kernel_size=(3, 3), padding=((4, 0), (0, 0)),
+                                      **{**dw, "input_size": (1, 7)}))
+    # an empty input has a shape and a dtype, no values: only the pairs of those
+    empty = pair_tags(_spec(kernel_size=(3, 3), **{**dw, "batch": 0}))
+    assert empty and {t.split("=")[0] for t in empty} <= {"pair:batch×dtype", "pair:dtype×ndim"}
+
+
+def test_crop_then_pad_counts_only_where_a_window_reads_the_trailing_padding():
+    """corner:crop_then_pad (p_lo < 0 < p_hi <= -p_lo) is reached only where some tap
+    reads past the input's end, index o*s - p_lo + t*d >= L (the tap index of Dumoulin &
+    Visin 2016, section 2): a bug that reads the cropped head there (BUG-CLASSES C07)
+    shows nowhere else. The closed form (remainder < p_hi) against the definition."""
+    import random
+    rng, checked, reads = random.Random(11), 0, 0
+    for _ in range(3000):
+        L, k, s, d = rng.randint(1, 12), rng.randint(1, 4), rng.randint(1, 4), rng.randint(1, 3)
+        lo = -rng.randint(1, 4)
+        hi = rng.randint(1, -lo)
+        try:
+            sp = _spec(input_size=(L,), kernel_size=(k,), stride=(s,), dilation=(d,), padding=((lo, hi),))
+        except ConvWitnessError:
+            continue
+        brute = any(o * s - lo + t * d >= L for o in range(sp.output_size[0]) for t in range(k))
+        assert ("corner:crop_then_pad" in reach_of(sp)) == brute, sp.describe()
+        checked, reads = checked + 1, reads + brute
+    assert checked > 1000 and 0 < reads < checked
+
+
 def test_drawn_geometries_read_their_input_and_empty_batches_show_their_shape():
     """No drawn geometry has every output equal to the bias alone (every tap in padding,
     here p_lo = 1, d = 2, k = 3 over one element: taps at -1, 1, 3), and an empty batch

@@ -23,13 +23,13 @@ from ..errors import SpecError
 from ..geometry.capabilities import Capabilities
 from ..geometry.formats import STORAGE_FORMATS, available
 from ..geometry.spec import ConvSpec
-from .features import THRESHOLD_COUNTS, empty_shape_tells, reads_input
+from .features import THRESHOLD_COUNTS, axis_taps_reading, empty_shape_tells, reads_input
 from .profiles import Profile
 from .values import KINDS, NUMERIC_KINDS
 
 __all__ = ["Needs", "FEATURES", "GROUPINGS", "COINCIDENCES", "THRESHOLD_COUNTS", "Reject",
            "RngPicker", "features_for", "coincidences_for", "groupings_for", "dtypes_for",
-           "build_spec", "satisfies"]
+           "build_spec", "usable"]
 
 FEATURES = ("plain", "remainder", "stride_over_kernel", "anisotropic", "pad_before", "pad_after",
             "window_in_padding", "kernel_fills_input", "unit_length", "pointwise",
@@ -276,7 +276,28 @@ def _axis(pick, feature, coincidence, caps, profile, needs, lmax, kernel=None):
             hi -= over
             if hi < pmin or (hi < 0 and lo < 0) or L < max(-lo, -hi, 0):
                 pick.reject()
+    if not axis_taps_reading(L, k, s, d, lo, hi):
+        keep = feature in ("unit_length", "kernel_fills_input") or coincidence == "output_one"
+        L, lo, hi = _reading(L, k, s, d, lo, hi, pmin, pmax, keep)
     return L, k, s, d, lo, hi, op
+
+
+def _reading(L, k, s, d, lo, hi, pmin, pmax, keep):
+    """An axis on which no output reads data (every window in the padding or the crop, or
+    dilated taps stepping over the data), moved to one that reads: more windows (L grown
+    by whole strides), or, where the window count is the point (``keep``), the padding
+    moved from one side to the other. Unchanged if neither reads (then rejected): far
+    cheaper than drawing again."""
+    if not keep:
+        for m in (1, 2, 3):
+            if axis_taps_reading(L + m * s, k, s, d, lo, hi):
+                return L + m * s, lo, hi
+    step = -1 if lo > 0 else 1
+    for delta in range(1, abs(lo) + abs(hi) + 1):
+        a, b = lo + step * delta, hi - step * delta
+        if pmin <= a <= pmax and pmin <= b <= pmax and axis_taps_reading(L, k, s, d, a, b):
+            return L, a, b
+    return L, lo, hi
 
 
 def _channels(pick, caps: Capabilities, profile: Profile, needs: Needs, coincidence: str):
@@ -357,7 +378,9 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
         axes = [first] * ndim
     else:
         kernel = first[1] if coincidence in ("square_kernel", "stride_equals_kernel") else None
-        axes = [first] + [_axis(pick, feature, coincidence, caps, profile, needs, lmax, kernel)
+        # one unit-length axis beside drawn ones (a shift or a read along another axis)
+        rest = "plain" if feature == "unit_length" else feature
+        axes = [first] + [_axis(pick, rest, coincidence, caps, profile, needs, lmax, kernel)
                           for _ in range(ndim - 1)]
     # one draw in eight; 7, not 0, so that shrinking (toward 0) leaves the axis non-empty
     if zero_spatial_allowed(caps, needs) and pick.int(0, 7, "zero_spatial") == 7:
@@ -384,37 +407,13 @@ def build_spec(pick, caps: Capabilities, profile: Profile, needs: Needs) -> Conv
     except SpecError:
         pick.reject()
         raise
-    if not _usable(spec, caps, profile, needs):
+    if not usable(spec, caps, profile, needs):
         pick.reject()
     return spec
 
 
-def _usable(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
+def usable(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
     """Claimed, within the element budget, able to show a bug (features.py), and applies."""
     return caps.admits(spec) and empty_shape_tells(spec) and reads_input(spec) and max(
         math.prod(spec.x_shape), math.prod(spec.w_shape), math.prod(spec.y_shape)) <= profile.max_elements \
         and (needs.applies is None or needs.applies(spec, caps))
-
-
-def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
-    """Whether ``spec`` (drawn for another invariant) meets these needs and claims: the
-    test that lets invariants share geometries (fewer distinct call signatures)."""
-    if needs.features is not None or spec.transposed != needs.transposed:
-        return False
-    if needs.bias is not None and spec.bias != needs.bias:
-        return False
-    props = ((needs.stride, any(s > 1 for s in spec.stride)),
-             (needs.dilation, any(d > 1 for d in spec.dilation)),
-             (needs.padding, any(lo or hi for lo, hi in spec.padding)),
-             (needs.grouped, spec.groups > 1),
-             (needs.negative_padding, any(min(p) < 0 for p in spec.padding)),
-             (needs.zero_batch, spec.batch == 0))
-    if any(want is not None and want != has for want, has in props):
-        return False
-    if spec.batch < needs.batch_min or (spec.batch == 0 and not caps.zero_batch):
-        return False
-    for allowed, value in ((needs.layouts, spec.layout), (needs.dtypes, spec.dtype),
-                           (needs.ndims, spec.ndim)):
-        if allowed is not None and value not in allowed:
-            return False
-    return spec.dtype in dtypes_for(caps, needs) and _usable(spec, caps, profile, needs)

@@ -67,18 +67,22 @@ def _taps_reading(spec: ConvSpec) -> list[int]:
     for a transposed convolution, which scatters every input through every tap)."""
     if spec.transposed:
         return list(spec.kernel_size)
-    out = []
-    for L, k, s, d, (lo, _), n in zip(spec.input_size, spec.kernel_size, spec.stride,
-                                      spec.dilation, spec.padding, spec.output_size):
+    return [axis_taps_reading(L, k, s, d, lo, hi) for L, k, s, d, (lo, hi) in
+            zip(spec.input_size, spec.kernel_size, spec.stride, spec.dilation, spec.padding)]
+
+
+def axis_taps_reading(L: int, k: int, s: int, d: int, lo: int, hi: int) -> int:
+    """How many of one axis's k taps read an input element in some output (convolution,
+    not transposed)."""
+    n = (L + lo + hi - d * (k - 1) - 1) // s + 1      # output positions (none if < 1)
+    count = 0
+    for t in range(k):
         # tap t reads position o*s + c, c = t*d - lo: the first output at or past the
         # input's start is o = max(0, ceil(-c / s)); it reads data if it exists and is < L
-        count = 0
-        for t in range(k):
-            c = t * d - lo
-            o = max(0, -(c // s))
-            count += o < n and o * s + c < L
-        out.append(count)
-    return out
+        c = t * d - lo
+        o = max(0, -(c // s))
+        count += o < n and o * s + c < L
+    return count
 
 
 def _positions_read(spec: ConvSpec) -> int:
@@ -159,8 +163,11 @@ def reach_of(spec: ConvSpec) -> set:
     if any(min(lo, hi) < 0 for *_, (lo, hi), _ in ax):
         corners.add("negative_padding")
     # one side cropped, the other padded by no more than the crop: a read past the end
-    # (or before the start) then lands on cropped-away data, not on zeros (C07)
-    if any(lo < 0 < hi <= -lo for *_, (lo, hi), _ in ax):
+    # (or before the start) then lands on cropped-away data, not on zeros (C07); counted
+    # only where a window reads that padding: the last one's last tap, at L + hi - 1 - r
+    # (r the stride remainder), reaches past the end; the first window's first tap, at
+    # -p_lo, always reads the leading padding
+    if conv and any(lo < 0 < hi <= -lo and r < hi for (*_, (lo, hi), _), r in zip(ax, spec.remainder)):
         corners.add("crop_then_pad")
     if any(hi < 0 < lo <= -hi for *_, (lo, hi), _ in ax):
         corners.add("pad_then_crop")
@@ -184,10 +191,26 @@ PAIRS = {"stride×dilation": ("stride", "dilation"), "groups×padding": ("groups
          "dtype×ndim": ("dtype", "ndim")}
 
 
+#: the pairs an empty input (N = 0 or a zero-size axis) reaches: it has no values, only
+#: its shape and dtype
+EMPTY_PAIRS = ("batch×dtype", "dtype×ndim")
+
+
 def pair_tags(spec: ConvSpec) -> set:
     """``pair:<name>=<a>×<b>`` tags of :data:`PAIRS` for a spec (one per padding kind
-    when the axes pad differently)."""
+    when the axes pad differently), counted only where the geometry can show the pair.
+    An empty input reaches only :data:`EMPTY_PAIRS`. A stride joins a pair only where
+    every kernel axis is longer than 1 and every tap reads data somewhere: on a one-tap
+    axis each input is read once whatever the stride, and a tap that reads only padding
+    computes nothing a stride could misplace, so the strided window paths of a
+    depthwise, grouped or dilated kernel do not show there (common practice, no source)."""
     fo = {k: v.split("+") for k, v in feature_of(spec).items()}
+    if fo["stride"] == ["strided"] and (min(spec.kernel_size, default=1) < 2 or
+                                        _taps_reading(spec) != list(spec.kernel_size)):
+        fo["stride"] = []
+    if spec.batch == 0 or 0 in spec.input_size:
+        return {f"pair:{name}={x}×{y}" for name in EMPTY_PAIRS for x in fo[PAIRS[name][0]]
+                for y in fo[PAIRS[name][1]]}
     return {f"pair:{name}={x}×{y}" for name, (a, b) in PAIRS.items() for x in fo[a] for y in fo[b]}
 
 

@@ -29,20 +29,25 @@ from __future__ import annotations
 import zlib
 
 from ..geometry.capabilities import Capabilities
+from ..geometry.spec import ConvSpec
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
-                   dtypes_for, features_for, groupings_for, satisfies, zero_spatial_allowed)
+                   dtypes_for, features_for, groupings_for, usable, zero_spatial_allowed)
 from .features import PAIRS, pair_tags, reach_of
 from .profiles import Profile
 
-__all__ = ["targets", "schedule", "value_kinds", "pair_space", "MAX_ENTRIES", "SCHEDULED_PAIRS"]
+__all__ = ["targets", "schedule", "value_kinds", "pair_space", "satisfies", "MAX_ENTRIES",
+           "SCHEDULED_PAIRS"]
 
-MAX_ENTRIES = 24        # explicit geometries per invariant at most
+#: explicit geometries per invariant at most (forward.contract takes up to about 24: an
+#: empty batch in each dtype is an entry of its own)
+MAX_ENTRIES = 28
 #: the feature pairs whose admitted combinations the schedule reaches (pair: tags)
 SCHEDULED_PAIRS = ("groups×stride", "stride×dilation", "remainder×dilation", "layout×groups",
                    "groups×padding", "batch×dtype")
 #: builder choices that give one value of a feature_of key (pair targets)
 _VALUE_FORCE = {
-    ("stride", "strided"): {"stride": "max"}, ("stride", "unit"): {"stride": "min", "feature": "plain"},
+    ("stride", "strided"): {"stride": "max", "kernel": "max"},     # a window on every axis
+    ("stride", "unit"): {"stride": "min", "feature": "plain"},
     ("dilation", "dilated"): {"dilation": "max"}, ("dilation", "none"): {"dilation": "min"},
     ("groups", "single"): {"grouping": "single"}, ("groups", "grouped"): {"grouping": "grouped"},
     ("groups", "depthwise"): {"grouping": "depthwise"},
@@ -50,7 +55,8 @@ _VALUE_FORCE = {
     ("padding", "symmetric"): {"asymmetric": False, "pad": "max", "feature": "plain"},
     ("padding", "asymmetric"): {"asymmetric": True, "pad_lo": "max", "pad_hi": 0, "feature": "plain"},
     ("padding", "negative"): {"asymmetric": True, "pad_lo": "min", "pad": "min", "feature": "plain"},
-    ("remainder", "nonzero"): {"feature": "remainder"}, ("remainder", "zero"): {"stride": "min"},
+    ("remainder", "nonzero"): {"feature": "remainder"},
+    ("remainder", "zero"): {"feature": "kernel_fills_input"},   # every axis: L + lo + hi == e
     ("batch", "zero"): {"feature": "zero_batch"}, ("batch", "one"): {"batch": 1},
     ("batch", "many"): {"batch": "max"},
 }
@@ -174,17 +180,20 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
     remaining = [t for t in targets(caps, needs) if not t.startswith("kind:")]
     specs = []
     if pool:
-        usable = [(sp, tags) for sp, tags in pool if satisfies(sp, caps, profile, needs)]
-        while remaining and len(specs) < MAX_ENTRIES and usable:
+        reusable = [(sp, tags) for sp, tags in pool if satisfies(sp, caps, profile, needs)]
+        while remaining and len(specs) < MAX_ENTRIES and reusable:
             want = set(remaining)
-            gain, best = max(((len(tags & want), -i) for i, (_, tags) in enumerate(usable)),
+            gain, best = max(((len(tags & want), -i) for i, (_, tags) in enumerate(reusable)),
                              default=(0, 0))
             if gain == 0:
                 break
-            sp, tags = usable.pop(-best)
+            sp, tags = reusable.pop(-best)
             specs.append(sp)
             remaining = [t for t in remaining if t not in tags]
     step = 0
+    # pair combinations the entries may reach on the way (not an empty batch: its entries
+    # would reach their structural targets with no values to show them)
+    pairs = [t for t in pair_targets(caps, needs) if "=zero×" not in t]
     while remaining and len(specs) < MAX_ENTRIES:
         step += 1
         # one unreached value of every category at once, then the first target alone
@@ -196,6 +205,11 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
                 seen_cats.add(cat)
                 for k, v in _force(t).items():
                     forced.setdefault(k, v)
+        reached = set().union(*map(_tags, specs)) if specs else set()
+        for tag in pairs:       # and every unreached pair combination that agrees
+            f = _pair_force(tag)
+            if tag not in reached and all(forced.get(k, v) == v for k, v in f.items()):
+                forced.update(f)
         spec, new = _try(caps, profile, needs, forced, base + step, set(remaining))
         if not new:
             spec, new = _try(caps, profile, needs, _force(remaining[0]), base + step + 10007,
@@ -231,8 +245,8 @@ def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
     reached = set().union(*(_tags(sp) for sp in specs)) if specs else set()
     remaining = [t for t in pair_targets(caps, needs) if t not in reached]
     if pool and remaining:
-        usable = [sp for sp, _ in pool if sp not in specs and satisfies(sp, caps, profile, needs)]
-        for sp in usable:
+        reusable = [sp for sp, _ in pool if sp not in specs and satisfies(sp, caps, profile, needs)]
+        for sp in reusable:
             if len(specs) >= MAX_ENTRIES or not remaining:
                 break
             got = _tags(sp) & set(remaining)
@@ -252,7 +266,8 @@ def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
         spec, new = _try(caps, profile, needs, forced, base + 20011 + step, set(remaining))
         if not new:
             tag = remaining.pop(0)
-            spec, new = _try(caps, profile, needs, _pair_force(tag), base + 40013 + step, {tag})
+            spec, new = _try(caps, profile, needs, _pair_force(tag), base + 40013 + step, {tag},
+                             tries=4 * TRIES)
             if not new:
                 continue                # not reachable under these needs: a hole in the pair %
         specs.append(spec)
@@ -314,3 +329,27 @@ def pair_space(caps: Capabilities, needs: Needs) -> dict:
     from .features import PAIRS
     vals = _values(caps, needs)
     return {name: [f"{x}×{y}" for x in vals[a] for y in vals[b]] for name, (a, b) in PAIRS.items()}
+
+
+def satisfies(spec: ConvSpec, caps: Capabilities, profile: Profile, needs: Needs) -> bool:
+    """Whether ``spec`` (drawn for another invariant) meets these needs and claims: the
+    test that lets invariants share geometries (fewer distinct call signatures)."""
+    if needs.features is not None or spec.transposed != needs.transposed:
+        return False
+    if needs.bias is not None and spec.bias != needs.bias:
+        return False
+    props = ((needs.stride, any(s > 1 for s in spec.stride)),
+             (needs.dilation, any(d > 1 for d in spec.dilation)),
+             (needs.padding, any(lo or hi for lo, hi in spec.padding)),
+             (needs.grouped, spec.groups > 1),
+             (needs.negative_padding, any(min(p) < 0 for p in spec.padding)),
+             (needs.zero_batch, spec.batch == 0))
+    if any(want is not None and want != has for want, has in props):
+        return False
+    if spec.batch < needs.batch_min or (spec.batch == 0 and not caps.zero_batch):
+        return False
+    for allowed, value in ((needs.layouts, spec.layout), (needs.dtypes, spec.dtype),
+                           (needs.ndims, spec.ndim)):
+        if allowed is not None and value not in allowed:
+            return False
+    return spec.dtype in dtypes_for(caps, needs) and usable(spec, caps, profile, needs)
