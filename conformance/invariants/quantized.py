@@ -112,8 +112,16 @@ def saturation(adapter, case, ctx):
     return check_reference(adapter, case, criterion="y == saturated reference")
 
 
+def _enough_outputs(spec, caps) -> bool:
+    """At least 16 output elements: with M = 2^-j (the "half" multipliers) an accumulator
+    lands on a tie k + 1/2 where it is an odd multiple of 2^(j-1), about one element in
+    2^j (j <= 3), so a geometry of one or two outputs would show the rounding rule only
+    by luck."""
+    return math.prod(spec.y_shape) >= 16
+
+
 @invariant("quantized.requantization", passes=PASSES, requires=_needs_quant({"int8", "uint8"}),
-           cases=_cases(lambda caps: QNeeds(outputs=("int8", "uint8"),
+           cases=_cases(lambda caps: QNeeds(geometry=Needs(applies=_enough_outputs), outputs=("int8", "uint8"),
                                             multipliers=("half", "half", "near_half", "moderate", "tiny"),
                                             zero_points=("any", "far"), clamp=False,
                                             kinds=("near_zero_point",))),
