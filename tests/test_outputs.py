@@ -153,8 +153,9 @@ def test_html_prints_small_witness_arrays_from_the_npz(reports):
     for name in ("x", "w", "b"):
         a = getattr(case, name)
         assert f"<b>{name}</b> · shape {tuple(a.shape)}" in block
-        # every value of a small array is printed, as numpy prints it (1.0 as "1."; a
-        # float32 with its shortest round-trip digits): read back, they are the array
+        # every value of a small array is printed as numpy prints it with floatmode
+        # "unique" (numpy.array2string: the fewest digits that give each value back, 1.0
+        # as "1."), for float64 as for float32: read back, they are the array
         pre = block.split(f"<b>{name}</b>", 1)[1].split("<pre>", 1)[1].split("</pre>", 1)[0]
         shown = [float(t) for t in re.findall(r"[-+]?(?:\d+\.?\d*|\.\d+)(?:e[-+]?\d+)?|nan|inf", pre)]
         assert np.array_equal(np.asarray(shown, dtype=a.dtype), a.ravel()), (name, pre)

@@ -197,7 +197,9 @@ def _array_text(a) -> str:
     native = a.dtype in (np.float16, np.float32, np.float64)
     shown = a if native else a.astype(np.float64)      # bfloat16, float8: print their values
     if a.size <= PRINT_LIMIT:
-        with np.printoptions(threshold=PRINT_LIMIT + 1, linewidth=72, precision=8):
+        # every digit needed to give back the stored value (numpy's floatmode "unique"):
+        # a witness's values are what reproduces its failure
+        with np.printoptions(threshold=PRINT_LIMIT + 1, linewidth=72, floatmode="unique"):
             return np.array2string(shown, separator=", ")
     flat = np.asarray(shown, dtype=np.float64).ravel()
     head = ", ".join(f"{v:.6g}" for v in flat[:8])
