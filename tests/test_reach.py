@@ -22,7 +22,7 @@ from convwitness.adapters.zoo_coincidence import (BatchChannelsSwapped, Depthwis
                                                   WeightGradChannelsSwapped)
 from convwitness.boundary.loading import load_adapter
 from convwitness.cases.draw import COINCIDENCES
-from convwitness.cases.features import reach_of
+from convwitness.cases.features import geometry_tags, reach_of
 from convwitness.cases.profiles import get_profile
 from convwitness.cases.schedule import schedule, targets
 from convwitness.invariants import catalogue, get
@@ -189,8 +189,9 @@ def test_schedule_reaches_every_target_of_every_invariant(adapter):
             continue
         needs = inv.needs_for(caps)
         specs = schedule(caps, QUICK, needs, seed=0, salt=inv.id)
-        reached = set().union(*(reach_of(s) for s in specs))
-        wanted = {t for t in targets(caps, needs) if not t.startswith("kind:")}
+        reached = set().union(*(geometry_tags(s, QUICK.max_elements)[1] for s in specs))
+        wanted = {t for t in targets(caps, needs, QUICK) if not t.startswith("kind:")}
+        assert "corner:large_tensor" in wanted or needs.zero_batch
         assert wanted <= reached, (inv.id, sorted(wanted - reached))
         assert all(caps.admits(s) for s in specs)
         seen += 1
@@ -381,14 +382,15 @@ def test_seed_matrix_of_coincidence_bugs_is_full():
 
 def test_schedule_alone_catches_corner_and_patch_bugs_on_every_seed():
     """With the free search kept on the schedule's geometries (compiles_per_shape), only
-    the schedule can catch a bug: negative padding read past the crop (BUG-CLASSES C07)
-    and the flattened-patch path of stride == kernel (C27) must be on its path."""
+    the schedule can catch a bug: negative padding read past the crop (BUG-CLASSES C07),
+    the flattened-patch path of stride == kernel (C27) and an output index kept in too
+    narrow a counter (C15: only a large output shows it) must be on its path."""
     out = io.StringIO()
-    rc = selftest(seeds="0-4", only="negative_padding_wraps,patch_kernel_transposed",
+    rc = selftest(seeds="0-4", only="negative_padding_wraps,patch_kernel_transposed,narrow_output_index",
                   stdout=out, stderr=io.StringIO(), compiles_per_shape=True)
     text = out.getvalue()
     assert rc == 0, text
-    assert "10 of 10 (bug, seed) cells caught" in text and "compiles_per_shape" in text
+    assert "15 of 15 (bug, seed) cells caught" in text and "compiles_per_shape" in text
 
 
 # -- the report's reach section -------------------------------------------------------------
@@ -428,7 +430,7 @@ def test_run_wide_pool_keeps_every_target_and_shares_geometries():
     for inv_id, specs in sched.items():
         inv = get(inv_id)
         needs = inv.needs_for(caps)
-        wanted = {t for t in targets(caps, needs) if not t.startswith("kind:")}
-        assert wanted <= set().union(*(reach_of(s) for s in specs)), inv_id
+        wanted = {t for t in targets(caps, needs, QUICK) if not t.startswith("kind:")}
+        assert wanted <= set().union(*(geometry_tags(s, QUICK.max_elements)[1] for s in specs)), inv_id
         # a shared geometry still meets this invariant's needs
         assert all(s.transposed == needs.transposed and s.batch >= needs.batch_min for s in specs)

@@ -5,6 +5,7 @@ imports hypothesis.
 """
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 
 from ..geometry.spec import ConvSpec
@@ -13,7 +14,7 @@ from ..geometry.spec import ConvSpec
 THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
 
 __all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS", "empty_shape_tells",
-           "reads_input"]
+           "reads_input", "large_tensor"]
 
 
 def feature_of(spec: ConvSpec) -> dict:
@@ -214,10 +215,22 @@ def pair_tags(spec: ConvSpec) -> set:
     return {f"pair:{name}={x}×{y}" for name, (a, b) in PAIRS.items() for x in fo[a] for y in fo[b]}
 
 
+def large_tensor(spec: ConvSpec, budget: int | None) -> bool:
+    """Whether the output holds at least an eighth of the profile's element budget
+    (``budget``, Profile.max_elements; an eighth, so that a 1-D geometry reaches it under
+    every profile's caps: quick's 3 x 33 channels x 17 positions is 1683 of 8192): the size
+    end of what a profile draws, where the flat index of the result written, and the tile
+    and block counts, are largest (an index kept in too narrow a counter, BUG-CLASSES C15,
+    shows only there)."""
+    return bool(budget) and 8 * math.prod(spec.y_shape) >= budget
+
+
 @lru_cache(maxsize=4096)
-def geometry_tags(spec: ConvSpec) -> tuple[tuple, frozenset]:
-    """(``"key=value"`` of :func:`feature_of`, :func:`reach_of` | :func:`pair_tags`) of a
-    spec: what the runner tallies for each checked geometry, a function of the geometry
-    alone, so computed once per geometry (the schedules of a run share geometries)."""
+def geometry_tags(spec: ConvSpec, budget: int | None = None) -> tuple[tuple, frozenset]:
+    """(``"key=value"`` of :func:`feature_of`, :func:`reach_of` | :func:`pair_tags`, and
+    ``corner:large_tensor`` against the element ``budget``) of a spec: what the runner
+    tallies for each checked geometry, a function of the geometry and the profile alone,
+    so computed once per geometry (the schedules of a run share geometries)."""
+    large = {"corner:large_tensor"} if large_tensor(spec, budget) else set()
     return (tuple(f"{k}={v}" for k, v in feature_of(spec).items()),
-            frozenset(reach_of(spec) | pair_tags(spec)))
+            frozenset(reach_of(spec) | pair_tags(spec) | large))

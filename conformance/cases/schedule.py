@@ -9,7 +9,8 @@ the seed, then hypothesis's free search (the runner adds them as ``@example``).
 The targets (:func:`targets`) are ``category:name`` tags, as :func:`reach_of` reads
 them off a spec: every feature, coincidence, channel structure, dtype, layout, ndim and
 claimed corner (negative padding, an axis cropped on one side and padded on the other,
-either way round; the largest legal output padding) the invariant can
+either way round; the largest legal output padding; an output of an eighth of the
+profile's element budget or more, ``corner:large_tensor``) the invariant can
 draw, C_in on either side of the vector and tile widths (``width:``, with one group),
 and every value kind it allows (the dtype's range end is the ``near_max`` kind).
 The schedule is greedy: each entry forces one not-yet-reached value of every category
@@ -32,7 +33,7 @@ from ..geometry.capabilities import Capabilities
 from ..geometry.spec import ConvSpec
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
                    dtypes_for, features_for, groupings_for, usable, zero_spatial_allowed)
-from .features import PAIRS, pair_tags, reach_of
+from .features import PAIRS, large_tensor, pair_tags, reach_of
 from .profiles import Profile
 
 __all__ = ["targets", "schedule", "value_kinds", "pair_space", "satisfies", "MAX_ENTRIES",
@@ -67,7 +68,17 @@ _CORNER_FORCE = {"negative_padding": {"asymmetric": True, "pad_lo": "min", "pad"
                  "crop_then_pad": {"asymmetric": True, "pad_lo": "min", "pad_hi": 1, "feature": "plain"},
                  "pad_then_crop": {"asymmetric": True, "pad_lo": 1, "pad_hi": "min", "feature": "plain"},
                  "zero_spatial": {"zero_spatial": "max"},
+                 # 3 taps, padding 1: the output as large as the input, of C = 17
+                 "large_tensor": {"coincidence": "equal_channels", "grouping": "single",
+                                  "channel_counts": "threshold", "channels_in": 17,
+                                  "length": "max", "batch": "max", "feature": "everyday",
+                                  "pad": "max"},
                  "max_output_padding": {"output_padding": "max", "stride": "max"}}
+#: further forced choices, tried in turn where a target's own give it in no try
+_ALSO_FORCE = {"corner:large_tensor": ({"coincidence": "equal_channels", "grouping": "single",
+                                        "channel_counts": "threshold", "channels_in": 33,
+                                        "length": "max", "batch": "max", "feature": "everyday",
+                                        "pad": "max", "ndim": 1},)}     # 1-D: wider channels
 
 
 def _ndims(caps: Capabilities, needs: Needs) -> list[int]:
@@ -78,7 +89,7 @@ def _layouts(caps: Capabilities, needs: Needs) -> list[str]:
     return sorted(caps.layouts if needs.layouts is None else set(caps.layouts) & set(needs.layouts))
 
 
-def targets(caps: Capabilities, needs: Needs) -> list[str]:
+def targets(caps: Capabilities, needs: Needs, profile: Profile | None = None) -> list[str]:
     """Every tag this invariant may reach (structural tags, then ``kind:`` tags)."""
     out: list[str] = []
 
@@ -118,6 +129,8 @@ def targets(caps: Capabilities, needs: Needs) -> list[str]:
     if needs.transposed and caps.output_padding and (caps.stride or caps.dilation) \
             and needs.stride is not False:
         add("corner:max_output_padding")
+    if profile is not None and not needs.zero_batch:
+        add("corner:large_tensor")          # an output of an eighth of the element budget
     for k in needs.kinds:
         add(f"kind:{k}")
     return [t for t in out if t not in needs.never]
@@ -151,8 +164,13 @@ def _pair_force(tag: str) -> dict:
     return forced
 
 
-def _tags(spec) -> set:
-    return reach_of(spec) | pair_tags(spec)
+def _reach(spec, profile) -> set:
+    """reach_of, and the large-tensor corner against the profile's element budget."""
+    return reach_of(spec) | ({"corner:large_tensor"} if large_tensor(spec, profile.max_elements) else set())
+
+
+def _tags(spec, profile) -> set:
+    return _reach(spec, profile) | pair_tags(spec)
 
 
 def _try(caps, profile, needs, forced: dict, seed: int, wanted: set, tries: int = TRIES):
@@ -163,7 +181,7 @@ def _try(caps, profile, needs, forced: dict, seed: int, wanted: set, tries: int 
             spec = build_spec(RngPicker(seed * 7919 + t, forced), caps, profile, needs)
         except Reject:
             continue
-        new = _tags(spec) & wanted
+        new = _tags(spec, profile) & wanted
         if new:
             return spec, new
     return None, set()
@@ -177,7 +195,7 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
     geometries of earlier invariants that meet these needs are taken first, greedily by
     how many unreached targets each adds; fresh geometries are added to the pool."""
     base = zlib.crc32(f"{salt}/{seed or 0}".encode())
-    remaining = [t for t in targets(caps, needs) if not t.startswith("kind:")]
+    remaining = [t for t in targets(caps, needs, profile) if not t.startswith("kind:")]
     specs = []
     if pool:
         reusable = [(sp, tags) for sp, tags in pool if satisfies(sp, caps, profile, needs)]
@@ -205,27 +223,30 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
                 seen_cats.add(cat)
                 for k, v in _force(t).items():
                     forced.setdefault(k, v)
-        reached = set().union(*map(_tags, specs)) if specs else set()
+        reached = set().union(*(_tags(sp, profile) for sp in specs)) if specs else set()
         for tag in pairs:       # and every unreached pair combination that agrees
             f = _pair_force(tag)
             if tag not in reached and all(forced.get(k, v) == v for k, v in f.items()):
                 forced.update(f)
         spec, new = _try(caps, profile, needs, forced, base + step, set(remaining))
         if not new:
-            spec, new = _try(caps, profile, needs, _force(remaining[0]), base + step + 10007,
-                             {remaining[0]}, tries=4 * TRIES)
+            for i, f in enumerate((_force(remaining[0]),) + _ALSO_FORCE.get(remaining[0], ())):
+                spec, new = _try(caps, profile, needs, f, base + step + 10007 + i, {remaining[0]},
+                                 tries=4 * TRIES)
+                if new:
+                    break
             if not new:     # a target the forced choice cannot give under these needs (one
                 # unit-length axis beside a long one, for a shift): unforced draws may
                 spec, new = _try(caps, profile, needs, {}, base + step + 30011, {remaining[0]},
                                  tries=8 * TRIES)
             if new:
-                new = reach_of(spec) & set(remaining)
+                new = _reach(spec, profile) & set(remaining)
             else:
                 remaining.pop(0)        # unreachable here: the report names the hole
                 continue
         specs.append(spec)
         if pool is not None:
-            pool.append((spec, frozenset(reach_of(spec))))
+            pool.append((spec, frozenset(_reach(spec, profile))))
         remaining = [t for t in remaining if t not in new]
     return _pairs(caps, profile, needs, base, specs, pool)
 
@@ -242,14 +263,14 @@ def pair_targets(caps: Capabilities, needs: Needs) -> list[str]:
 def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
     """``specs`` extended by geometries that reach the admitted pair combinations the
     schedule has not reached yet: from the pool first, then fresh (one forced pair each)."""
-    reached = set().union(*(_tags(sp) for sp in specs)) if specs else set()
+    reached = set().union(*(_tags(sp, profile) for sp in specs)) if specs else set()
     remaining = [t for t in pair_targets(caps, needs) if t not in reached]
     if pool and remaining:
         reusable = [sp for sp, _ in pool if sp not in specs and satisfies(sp, caps, profile, needs)]
         for sp in reusable:
             if len(specs) >= MAX_ENTRIES or not remaining:
                 break
-            got = _tags(sp) & set(remaining)
+            got = _tags(sp, profile) & set(remaining)
             if got:
                 specs.append(sp)
                 remaining = [t for t in remaining if t not in got]
@@ -272,8 +293,8 @@ def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
                 continue                # not reachable under these needs: a hole in the pair %
         specs.append(spec)
         if pool is not None:
-            pool.append((spec, frozenset(reach_of(spec))))
-        got = _tags(spec)
+            pool.append((spec, frozenset(_reach(spec, profile))))
+        got = _tags(spec, profile)
         remaining = [t for t in remaining if t not in got]
     return specs
 

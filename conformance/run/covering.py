@@ -86,7 +86,7 @@ def covering_examples(caps, inv: Invariant, profile: Profile, seed, tally=None) 
     if specs is None:
         specs = schedule(caps, profile, needs, seed, inv.id)
     if tally is not None:           # the runner's tally: what the report's reach needs
-        tally.plan = {"targets": targets(caps, needs), "pairs": pair_space(caps, needs),
+        tally.plan = {"targets": targets(caps, needs, profile), "pairs": pair_space(caps, needs),
                       "scheduled": len(specs)}
     out = []
     for i, (spec, kinds) in enumerate(zip(specs, value_kinds(needs, len(specs), profile.values))):

@@ -174,7 +174,7 @@ def hypothesis_test(adapter, inv: Invariant, profile: Profile, seed: int | None,
         if spec in tally.distinct:      # counted once, however often it is drawn
             return
         tally.distinct.add(spec)
-        coverage, reach = geometry_tags(spec)
+        coverage, reach = geometry_tags(spec, profile.max_elements)
         tally.coverage.update(coverage)
         tally.reach.update(reach)
 
