@@ -14,7 +14,7 @@ from ..geometry.spec import ConvSpec
 THRESHOLD_COUNTS = (7, 8, 9, 15, 16, 17, 31, 32, 33)
 
 __all__ = ["feature_of", "reach_of", "pair_tags", "geometry_tags", "PAIRS", "empty_shape_tells",
-           "reads_input", "large_tensor"]
+           "reads_input", "large_tensor", "reach_within"]
 
 
 def feature_of(spec: ConvSpec) -> dict:
@@ -225,12 +225,16 @@ def large_tensor(spec: ConvSpec, budget: int | None) -> bool:
     return bool(budget) and 8 * math.prod(spec.y_shape) >= budget
 
 
+def reach_within(spec: ConvSpec, budget: int | None) -> set:
+    """:func:`reach_of`, and ``corner:large_tensor`` against the element ``budget``."""
+    return reach_of(spec) | ({"corner:large_tensor"} if large_tensor(spec, budget) else set())
+
+
 @lru_cache(maxsize=4096)
 def geometry_tags(spec: ConvSpec, budget: int | None = None) -> tuple[tuple, frozenset]:
-    """(``"key=value"`` of :func:`feature_of`, :func:`reach_of` | :func:`pair_tags`, and
-    ``corner:large_tensor`` against the element ``budget``) of a spec: what the runner
-    tallies for each checked geometry, a function of the geometry and the profile alone,
-    so computed once per geometry (the schedules of a run share geometries)."""
-    large = {"corner:large_tensor"} if large_tensor(spec, budget) else set()
+    """(``"key=value"`` of :func:`feature_of`, :func:`reach_within` | :func:`pair_tags`)
+    of a spec: what the runner tallies for each checked geometry, a function of the
+    geometry and the profile's element budget alone, so computed once per geometry (the
+    schedules of a run share geometries)."""
     return (tuple(f"{k}={v}" for k, v in feature_of(spec).items()),
-            frozenset(reach_of(spec) | pair_tags(spec) | large))
+            frozenset(reach_within(spec, budget) | pair_tags(spec)))

@@ -33,7 +33,7 @@ from ..geometry.capabilities import Capabilities
 from ..geometry.spec import ConvSpec
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
                    dtypes_for, features_for, groupings_for, usable, zero_spatial_allowed)
-from .features import PAIRS, large_tensor, pair_tags, reach_of
+from .features import PAIRS, pair_tags, reach_within
 from .profiles import Profile
 
 __all__ = ["targets", "schedule", "value_kinds", "pair_space", "satisfies", "MAX_ENTRIES",
@@ -165,8 +165,7 @@ def _pair_force(tag: str) -> dict:
 
 
 def _reach(spec, profile) -> set:
-    """reach_of, and the large-tensor corner against the profile's element budget."""
-    return reach_of(spec) | ({"corner:large_tensor"} if large_tensor(spec, profile.max_elements) else set())
+    return reach_within(spec, profile.max_elements)
 
 
 def _tags(spec, profile) -> set:
