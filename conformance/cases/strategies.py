@@ -193,14 +193,10 @@ def _strategy(build, *args):
     return st.composite(lambda draw: build(_HypothesisPicker(draw), *args))()
 
 
-def _spec(pick, caps, profile, needs):
-    return build_spec(pick, caps, profile, needs)
-
-
 def specs(capabilities: Capabilities, profile="quick", needs: Needs | None = None):
     """A strategy of ConvSpecs inside ``capabilities`` that meet ``needs``."""
     profile, needs = _check_args(capabilities, profile, needs)
-    return _strategy(_spec, capabilities, profile, needs)
+    return _strategy(build_spec, capabilities, profile, needs)
 
 
 def _cases(pick, caps, profile, needs, count):
