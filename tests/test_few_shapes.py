@@ -133,3 +133,54 @@ def test_cli_flag_refused_with_a_cluster(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "compiles_per_shape=True" in err and "--cluster" in err
     assert not os.path.exists(tmp_path / "r" / "report.json")
+
+
+def _geometry_of_call(sig) -> tuple:
+    """(x, w and bias shapes and dtypes, keywords) of a recorded signature: the geometry it
+    was called on, a bias or none included (the method and upstream gradient left out)."""
+    _method, arrays, kwargs = sig
+    return arrays[:3], kwargs
+
+
+def test_invariants_not_marked_derives_call_only_their_cases_geometry():
+    """For a port that compiles per shape, an invariant that is not marked ``derives``
+    (forward.bias_shift, the linearity and adjoint checks included: a zero bias in place
+    of none) calls the port only on its case's geometry, so it costs no signature beyond
+    the schedule's; the ones marked ``derives`` do call others (why their schedules are
+    lean)."""
+    from convwitness.invariants import catalogue
+    caps = _reference(True).capabilities
+    own_probe = {"precision.probe"}       # crafted geometries of its own, once per dtype
+    extra = {}
+    for inv in catalogue():
+        if inv.cases is not None or inv.refusal(caps) or inv.id in own_probe:
+            continue
+        explicit = covering_examples(inv.claims(caps), inv, QUICK, 0)[:4]
+        more = 0
+        for cases in explicit:
+            adapter = _reference(True)
+            inv.check(adapter, cases[0], Context(profile=QUICK))
+            more += len({_geometry_of_call(s) for s in adapter.signatures}) > 1
+        extra[inv.id] = more
+    plain = {i: n for i, n in extra.items() if not get(i).derives}
+    assert plain and all(n == 0 for n in plain.values()), {i: n for i, n in plain.items() if n}
+    marked = {i: n for i, n in extra.items() if get(i).derives}
+    assert marked and all(n > 0 for n in marked.values()), {i: n for i, n in marked.items() if not n}
+
+
+def test_lean_schedules_leave_dtypes_widths_and_pairs_to_the_reference_checks():
+    """Only for a port that compiles per shape, and only for invariants marked ``derives``."""
+    from convwitness.cases.schedule import pair_targets, targets
+    inv = get("forward.layout_agreement")
+    for declared in (False, True):
+        caps = _reference(declared).capabilities
+        needs = inv.needs_for(caps)
+        cats = {t.partition(":")[0] for t in targets(caps, needs, QUICK)}
+        assert needs.lean is declared
+        assert ({"dtype", "width"} <= cats) is not declared
+        assert {"feature", "coincidence", "grouping", "layout", "ndim", "corner"} <= cats
+        assert bool(pair_targets(caps, needs)) is not declared
+    ref = get("forward.reference")
+    caps = _reference(True).capabilities
+    assert not ref.needs_for(caps).lean
+    assert {"dtype", "width"} <= {t.partition(":")[0] for t in targets(caps, ref.needs_for(caps), QUICK)}

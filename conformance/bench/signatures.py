@@ -8,7 +8,9 @@ sleeps ``COMPILE_S`` on each new signature and prints its measured wall time, an
 wall time the same run would take at 1 s per signature (the measured time with the
 simulated compile cost replaced by 1 s per signature: arithmetic, printed as such): once
 as a port that does not say so, once declaring ``compiles_per_shape=True`` (the free
-search then stays on the covering schedule's geometries, run/covering.py).
+search then stays on the covering schedule's geometries, run/covering.py; the invariants
+that call derived geometries get lean schedules, a call without bias passes a zero bias,
+the precision probe runs once per dtype, long_sum.* keep one shape per dtype and kernel).
 """
 from __future__ import annotations
 

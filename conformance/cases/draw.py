@@ -50,14 +50,14 @@ COINCIDENCES = ("equal_channels", "batch_equals_channels", "square_input", "squa
 class Needs:
     """What an invariant requires of its cases.
 
-    ``bias``/``stride``/``dilation``/``padding``/``grouped`` force the property
-    (True), forbid it (False) or leave it free (None). ``kinds`` are the value kinds
-    allowed. ``layouts`` restricts the layout; ``batch_min`` the batch size.
+    ``bias``/``stride``/``dilation``/``padding``/``grouped`` force the property (True), forbid
+    it (False) or leave it free (None); ``kinds``, ``layouts``, ``batch_min`` restrict those.
     ``applies(spec, caps)`` is the invariant's own geometry condition (what it would
     otherwise skip): a geometry it refuses is never drawn, scheduled or reused, so no
     scheduled target is reached only by a skipped example. ``never`` lists the targets
     no geometry meeting that condition can have (left out of the schedule's targets and
-    the report's holes: e.g. one output position for a shift of the output).
+    the report's holes: e.g. one output position for a shift of the output). ``lean``:
+    a lean schedule (``Invariant.needs_for``, cases/schedule.py ``LEAN_LEAVES``).
     """
 
     transposed: bool = False
@@ -76,6 +76,7 @@ class Needs:
     features: tuple | None = None
     applies: Callable | None = field(default=None, compare=False)
     never: tuple = ()
+    lean: bool = False
 
     def __post_init__(self):
         bad = [k for k in self.kinds if k not in KINDS]

@@ -61,6 +61,8 @@ _VALUE_FORCE = {
     ("batch", "zero"): {"feature": "zero_batch"}, ("batch", "one"): {"batch": 1},
     ("batch", "many"): {"batch": "max"},
 }
+#: target categories a lean schedule (Needs.lean) leaves to the reference invariants
+LEAN_LEAVES = ("dtype", "width")
 TRIES = 12              # seeded tries per forced combination
 
 # forced builder choices that produce a tag (tags not listed force their own label)
@@ -133,7 +135,8 @@ def targets(caps: Capabilities, needs: Needs, profile: Profile | None = None) ->
         add("corner:large_tensor")          # an output of an eighth of the element budget
     for k in needs.kinds:
         add(f"kind:{k}")
-    return [t for t in out if t not in needs.never]
+    return [t for t in out if t not in needs.never
+            and not (needs.lean and t.partition(":")[0] in LEAN_LEAVES)]
 
 
 def _force(tag: str) -> dict:
@@ -252,8 +255,9 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
 
 def pair_targets(caps: Capabilities, needs: Needs) -> list[str]:
     """The ``pair:`` tags of :data:`SCHEDULED_PAIRS` this invariant admits (none for an
-    invariant of empty batches: no value of theirs can show a path's arithmetic)."""
-    if needs.zero_batch:
+    invariant of empty batches: no value of theirs can show a path's arithmetic; none on a
+    lean schedule, :class:`~convwitness.cases.draw.Needs`)."""
+    if needs.zero_batch or needs.lean:
         return []
     space = pair_space(caps, needs)
     return [f"pair:{name}={combo}" for name in SCHEDULED_PAIRS for combo in space.get(name, [])]

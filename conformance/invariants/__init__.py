@@ -7,6 +7,7 @@ docstring states the property in maths. ``catalogue()`` lists them in a fixed or
 """
 from __future__ import annotations
 
+import dataclasses
 import inspect
 from dataclasses import dataclass, field
 from typing import Callable
@@ -58,6 +59,10 @@ class Invariant:
     #: worth its cost where the share grows smoothly toward a failure (agreement with
     #: the reference); a structural property fails at once or not at all
     steer: bool = False
+    #: the check calls the port on geometries derived from the case's (a stride of 1,
+    #: explicit padding, the other layout, a gradient as a forward call...): each a
+    #: call signature of its own, which a port that compiles per shape pays for
+    derives: bool = False
 
     @property
     def property(self) -> str:
@@ -91,8 +96,10 @@ class Invariant:
 
     def needs_for(self, caps: Capabilities) -> Needs:
         """The needs, adjusted to what the adapter can do (e.g. no dilation)."""
+        lean = self.derives and getattr(caps, "compiles_per_shape", False)
         caps = self.claims(caps)
-        return self.adjust(caps, self.needs) if self.adjust else self.needs
+        needs = self.adjust(caps, self.needs) if self.adjust else self.needs
+        return dataclasses.replace(needs, lean=True) if lean else needs
 
     def strategy(self, caps: Capabilities, profile: Profile):
         """The hypothesis strategy of this invariant's examples (tuples of Cases)."""
@@ -112,7 +119,7 @@ class Invariant:
 
 def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | None = None,
               requires=None, informational_unless: str | None = None, adjust=None, cases=None,
-              steer: bool = False):
+              steer: bool = False, derives: bool = False):
     """Register ``func(adapter, case, context) -> Evidence`` as an invariant."""
     surface, dot, prop = id.partition(".")
     if surface not in SURFACES or not dot or not prop or "." in prop:
@@ -126,7 +133,7 @@ def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | No
         REGISTRY[id] = Invariant(id=id, statement=statement, passes=frozenset(passes),
                                  needs=needs or Needs(), func=func, requires=requires,
                                  informational_unless=informational_unless, adjust=adjust,
-                                 cases=cases, steer=steer)
+                                 cases=cases, steer=steer, derives=derives)
         return func
     return deco
 

@@ -12,13 +12,25 @@ from .evidence import Evidence, compare
 from ..geometry.formats import get_format
 
 __all__ = ["copies", "model_of", "pass_bound", "judge", "run_forward", "overflow_possible", "self_bound",
-           "check_output_contract"]
+           "check_output_contract", "without_bias"]
 
 
 def copies(case):
     """Fresh copies of x, w, b, grad_y (adapters may misbehave on the originals)."""
     c = lambda a: None if a is None else a.copy()   # noqa: E731
     return c(case.x), c(case.w), c(case.b), c(case.grad_y)
+
+
+def without_bias(adapter, spec, b):
+    """(spec, bias) of a call that adds no bias to the case's ``spec``: the spec without a
+    bias and None; for a port that compiles per shape, where ``spec`` has a bias, the same
+    spec with a bias of zeros (adding +0 changes no result and no rounding, and the call
+    keeps the case's signature instead of making one of its own)."""
+    if b is None or not spec.bias:
+        return spec.replace(bias=False), None
+    if getattr(adapter.capabilities, "compiles_per_shape", False):
+        return spec, np.zeros_like(b)
+    return spec.replace(bias=False), None
 
 
 def model_of(adapter, spec, pass_: str | None = None):

@@ -17,7 +17,7 @@ from ..cases.strategies import Needs
 from ..cases.values import SALTS, aux_rng
 from . import invariant
 from ._linear import near_underflow, power_of_two, products_stay_normal, second_operand
-from ._common import judge, model_of, overflow_possible, pass_bound
+from ._common import judge, model_of, overflow_possible, pass_bound, without_bias
 
 GRADS = (("grad_x", "grad_input"), ("grad_w", "grad_weight"), ("grad_b", "grad_bias"))
 
@@ -78,7 +78,7 @@ def _nonzero_bits(a: np.ndarray) -> np.ndarray:
     return raw != 0
 
 
-@invariant("backward.zero_batch", passes=("backward",), needs=Needs(zero_batch=True, batch_min=0),
+@invariant("backward.zero_batch", derives=True, passes=("backward",), needs=Needs(zero_batch=True, batch_min=0),
            requires=lambda caps: None if caps.zero_batch else "adapter does not claim zero_batch",
            adjust=lambda caps, needs: Needs(zero_batch=True, batch_min=0, bias=True if caps.bias else False),
            statement="for an empty batch the input gradient is empty and the weight and bias "
@@ -237,9 +237,9 @@ def bias_independence(adapter, case, ctx):
     """GI and GW of backward(x, w, b, g) equal those of backward(x, w, None, g)
     within B + B (both approximate the same exact gradient)."""
     spec = case.spec
-    nb = spec.replace(bias=False)
+    nb, zb = without_bias(adapter, spec, case.b)        # no bias (or a zero one)
     with_b = _backward(adapter, spec, case.x, case.w, case.b, case.grad_y)
-    without = _backward(adapter, nb, case.x, case.w, None, case.grad_y)
+    without = _backward(adapter, nb, case.x, case.w, zb, case.grad_y)
     bnd = _bounds(adapter, nb, case.x, case.w, case.grad_y, False)
     results = []
     for index, (name, pass_) in enumerate(GRADS[:2]):

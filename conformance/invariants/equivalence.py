@@ -54,7 +54,7 @@ def _same(adapter, spec, y, y_other, bound_a, bound_b, *, criterion, mask=None):
                    criterion=criterion, explanation=f"sum of both bounds; {bound_a.explain()}")
 
 
-@invariant("forward.group_split", passes=("forward",), needs=Needs(grouped=True),
+@invariant("forward.group_split", derives=True, passes=("forward",), needs=Needs(grouped=True),
            requires=lambda caps: None if caps.groups else "adapter does not claim groups",
            statement="a grouped convolution equals the per-group convolutions side by side")
 def groups(adapter, case, ctx):
@@ -97,7 +97,7 @@ def _explicit_padding(spec: ConvSpec, x: np.ndarray):
     return xp, spec.replace(input_size=size, padding=0)
 
 
-@invariant("forward.explicit_padding", passes=("forward",), needs=Needs(padding=True),
+@invariant("forward.explicit_padding", derives=True, passes=("forward",), needs=Needs(padding=True),
            statement="padding equals explicit zeros around the input (cropping where negative)")
 def padding(adapter, case, ctx):
     """f(x; p_lo, p_hi) = f(pad(x, p_lo, p_hi); 0, 0), negative padding cropping the input,
@@ -115,7 +115,7 @@ def padding(adapter, case, ctx):
                  criterion=f"padding: f(x; {spec.padding}) == f(explicitly padded x; 0)")
 
 
-@invariant("forward.stride_subsampling", passes=("forward",), needs=Needs(stride=True),
+@invariant("forward.stride_subsampling", derives=True, passes=("forward",), needs=Needs(stride=True),
            statement="a strided convolution is the stride-1 result subsampled by the stride")
 def stride(adapter, case, ctx):
     """f(x; s)[..., h] = f(x; 1)[..., h*s] for h < L_out, within the sum of both bounds."""
@@ -148,7 +148,7 @@ def _dilate_kernel(spec: ConvSpec, w: np.ndarray) -> np.ndarray:
     return out
 
 
-@invariant("forward.dilation_expansion", passes=("forward",), needs=Needs(dilation=True),
+@invariant("forward.dilation_expansion", derives=True, passes=("forward",), needs=Needs(dilation=True),
            statement="a dilated kernel equals the zero-inserted kernel without dilation")
 def dilation(adapter, case, ctx):
     """f(x, w; d) = f(x, w_d; 1) with w_d[t*d] = w[t] and zeros between,
@@ -187,7 +187,7 @@ def _shiftable(spec, caps) -> dict:
     return out
 
 
-@invariant("forward.shift_equivariance", passes=("forward",),
+@invariant("forward.shift_equivariance", derives=True, passes=("forward",),
            needs=Needs(applies=lambda spec, caps: bool(_shiftable(spec, caps)),
                        never=("coincidence:output_one",)),
            statement="shifting the input by one stride shifts the output by one position")
@@ -228,7 +228,7 @@ def _to_layout(a: np.ndarray, layout: str) -> np.ndarray:
     return np.ascontiguousarray(np.moveaxis(a, -1, 1))
 
 
-@invariant("forward.layout_agreement", passes=("forward",),
+@invariant("forward.layout_agreement", derives=True, passes=("forward",),
            requires=lambda caps: None if {"channels_first", "channels_last"} <= caps.layouts
            else "adapter claims only one layout",
            statement="channels-last and channels-first give the same result")
@@ -250,7 +250,7 @@ def layout(adapter, case, ctx):
                  criterion=f"layout: {spec.layout} == {other_layout} (transposed back)")
 
 
-@invariant("forward.batch_independence", passes=("forward",), needs=Needs(batch_min=2),
+@invariant("forward.batch_independence", derives=True, passes=("forward",), needs=Needs(batch_min=2),
            statement="sample i's output depends only on sample i (other samples changed, or "
                      "computed alone)")
 def batch_independence(adapter, case, ctx):

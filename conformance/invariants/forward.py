@@ -11,7 +11,8 @@ from ..cases.strategies import Needs
 from ..cases.values import EXACT_KINDS, SALTS
 from . import invariant
 from ._linear import near_underflow, power_of_two, products_stay_normal, second_operand
-from ._common import check_output_contract, copies, judge, model_of, overflow_possible, pass_bound, run_forward, self_bound
+from ._common import (check_output_contract, copies, judge, model_of, overflow_possible, pass_bound,
+                      run_forward, self_bound, without_bias)
 
 LINEAR_KINDS = ("small_int", "pow2", "uniform", "wide")
 
@@ -71,7 +72,7 @@ def forward_exact(adapter, case, ctx):
 
 
 def _linearity(adapter, case, name: str, purpose: str):
-    spec = case.spec.replace(bias=False)
+    spec, zb = without_bias(adapter, case.spec, case.b)       # no bias (or a zero one)
     x, w = case.x, case.w
     a1 = getattr(case, name)
     a2 = second_operand(case, a1, SALTS[f"{purpose}_second"])
@@ -84,21 +85,21 @@ def _linearity(adapter, case, name: str, purpose: str):
     if not np.array_equal(delta_d.astype(np.float64), delta):
         delta_d = None
     args = lambda a: (a, w) if name == "x" else (x, a)   # noqa: E731
-    y1 = run_forward(adapter, spec, *args(a1), None)
-    y2 = run_forward(adapter, spec, *args(a2), None)
-    y3 = run_forward(adapter, spec, *args(a3), None)
-    b1 = self_bound(adapter, spec, *args(a1), None, y1)
-    b2 = self_bound(adapter, spec, *args(a2), None, y2)
-    b3 = self_bound(adapter, spec, *args(a3), None, y3)
+    y1 = run_forward(adapter, spec, *args(a1), zb)
+    y2 = run_forward(adapter, spec, *args(a2), zb)
+    y3 = run_forward(adapter, spec, *args(a3), zb)
+    b1 = self_bound(adapter, spec, *args(a1), zb, y1)
+    b2 = self_bound(adapter, spec, *args(a2), zb, y2)
+    b3 = self_bound(adapter, spec, *args(a3), zb, y3)
     tol = b1.values + b2.values + b3.values
     if not delta.any():
         corr = 0.0
     elif delta_d is not None:
-        y_d = run_forward(adapter, spec, *args(delta_d), None)
+        y_d = run_forward(adapter, spec, *args(delta_d), zb)
         corr = y_d.astype(np.float64)
-        tol = tol + self_bound(adapter, spec, *args(delta_d), None, y_d).values
+        tol = tol + self_bound(adapter, spec, *args(delta_d), zb, y_d).values
     else:       # underflow in the residual: take it from the reference (tiny)
-        corr = ref.forward(spec, *args(delta), None)
+        corr = ref.forward(spec, *args(delta), zb)
     lhs = y3.astype(np.float64)
     rhs = y1.astype(np.float64) + y2.astype(np.float64) + corr
     tol = tol + 4 * 2.0 ** -53 * (np.abs(rhs) + np.abs(lhs))
@@ -118,7 +119,7 @@ def _linearity(adapter, case, name: str, purpose: str):
     scaled = to_format(a1.astype(np.float64) * 2.0 ** k, spec.dtype)
     if not np.array_equal(scaled.astype(np.float64), a1.astype(np.float64) * 2.0 ** k):
         return add                       # the scaled operand is not exact in the dtype
-    ys = run_forward(adapter, spec, *args(scaled), None)
+    ys = run_forward(adapter, spec, *args(scaled), zb)
     y1f = y1.astype(np.float64)
     free_h = near_underflow(y1f, ys, k, get_format(spec.dtype).tiny) | ~np.isfinite(y1f) | \
         overflow_possible(spec, adapter, b1)
@@ -157,10 +158,10 @@ def bias_shift(adapter, case, ctx):
     spec = case.spec
     x, w, b, _ = copies(case)
     y_b = run_forward(adapter, spec, x, w, b)
-    nb = spec.replace(bias=False)
-    y_0 = run_forward(adapter, nb, case.x, case.w, None)
+    nb, zb = without_bias(adapter, spec, case.b)        # no bias (or a zero one)
+    y_0 = run_forward(adapter, nb, case.x, case.w, zb)
     bd_b = self_bound(adapter, spec, case.x, case.w, case.b, y_b)
-    bd_0 = self_bound(adapter, nb, case.x, case.w, None, y_0)
+    bd_0 = self_bound(adapter, nb, case.x, case.w, zb, y_0)
     shape = (-1,) + (1,) * spec.ndim if spec.layout == "channels_first" else (-1,)
     shifted = y_0.astype(np.float64) + case.b.astype(np.float64).reshape(shape)
     tol = bd_b.values + bd_0.values + 2.0 ** -52 * np.abs(shifted)

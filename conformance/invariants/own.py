@@ -24,7 +24,7 @@ from ..geometry.spec import ConvSpec
 from ..cases.strategies import Needs
 from ..cases.values import NUMERIC_KINDS, SALTS, aux_rng
 from . import invariant
-from ._common import overflow_possible, pass_bound, run_forward
+from ._common import overflow_possible, pass_bound, run_forward, without_bias
 from .backward import _backward, _two_sum
 
 # near_max data make the float64 inner products (or the weight gradient's N*prod(L_out)
@@ -67,6 +67,13 @@ def _overflow(spec, adapter, *bounds) -> bool:
     return any(bool(overflow_possible(spec, adapter, b).any()) for b in bounds)
 
 
+def _no_bias_call(adapter, spec, x, w, b):
+    """(spec, x, w, bias) of the forward call without bias (a zero bias for a port that
+    compiles per shape: the case's own signature, :func:`without_bias`)."""
+    spec, zb = without_bias(adapter, spec, b)
+    return spec, x, w, zb
+
+
 def _scalar(actual, expected, tol, *, what, criterion, explanation):
     return compare(np.array([actual]), np.array([expected]), np.array([tol]), what=what,
                    criterion=criterion, explanation=explanation)
@@ -81,7 +88,7 @@ def adjoint(adapter, case, ctx):
     sum_j |g_j| B_y[j] + sum_i |x_i| B_GI[i] (w: |w_i| B_GW[i]) + gamma_m(2^-53) sum |terms|."""
     spec = case.spec
     nb = spec.replace(bias=False)
-    y = run_forward(adapter, nb, case.x, case.w, None)
+    y = run_forward(adapter, *_no_bias_call(adapter, spec, case.x, case.w, case.b))
     gx, gw, _ = _backward(adapter, spec, case.x, case.w, case.b, case.grad_y)
     arrays = {"x": case.x, "w": case.w, "grad_y": case.grad_y}
     _, by = pass_bound(adapter, nb, "forward", arrays)
@@ -109,7 +116,7 @@ def _wc_adjust(caps, needs: Needs) -> Needs:
                    dilation=False if not caps.stride else needs.dilation)
 
 
-@invariant("grad_weight.forward_correlation", passes=("forward", "backward"), adjust=_wc_adjust,
+@invariant("grad_weight.forward_correlation", derives=True, passes=("forward", "backward"), adjust=_wc_adjust,
            statement="the weight gradient equals the correlation of the input with the upstream "
                      "gradient, computed by the adapter's own forward")
 def weight_correlation(adapter, case, ctx):
@@ -160,7 +167,7 @@ def _crop_input(z: np.ndarray, spec: ConvSpec) -> np.ndarray:
     return out
 
 
-@invariant("grad_input.forward_flipped_kernel", passes=("forward", "backward"),
+@invariant("grad_input.forward_flipped_kernel", derives=True, passes=("forward", "backward"),
            statement="the input gradient equals the adapter's own forward of the zero-inserted, "
                      "padded upstream gradient with the flipped kernel")
 def input_transposed(adapter, case, ctx):
@@ -246,7 +253,7 @@ def _fd(adapter, case, name: str, grad, grad_bound, salt: int):
     for sign in (1.0, -1.0):
         pert = to_format(a.astype(np.float64) + sign * h * v, spec.dtype)
         arrays = {"x": case.x, "w": case.w, name: pert}
-        ys.append(run_forward(adapter, nb, arrays["x"], arrays["w"], None))
+        ys.append(run_forward(adapter, *_no_bias_call(adapter, spec, arrays["x"], arrays["w"], case.b)))
         bounds.append(pass_bound(adapter, nb, "forward", arrays)[1])
     if _overflow(nb, adapter, *bounds) or _overflow(spec, adapter, grad_bound):
         return _skip("a result may overflow its format, the inner products are not formed")

@@ -49,7 +49,7 @@ def _repeat_check(adapter, spec, first, again, bound, what):
                    explanation=bound.explain())
 
 
-@invariant("forward.repeatability", passes=("forward",),
+@invariant("forward.repeatability", derives=True, passes=("forward",),
            statement="the same call gives the same result, and a call with other parameters "
                      "in between leaves no state behind (A, B, A)")
 def repeatability(adapter, case, ctx):
@@ -76,7 +76,7 @@ def repeatability(adapter, case, ctx):
     return combine(untouched, *results)
 
 
-@invariant("backward.repeatability", passes=("backward",),
+@invariant("backward.repeatability", derives=True, passes=("backward",),
            statement="the same backward call gives the same gradients, also after a call with "
                      "other parameters (A, B, A)")
 def backward_repeatability(adapter, case, ctx):

@@ -13,7 +13,8 @@ import numpy as np
 from .evidence import Evidence, compare
 from ..cases.strategies import Needs
 from . import invariant
-from ._common import check_output_contract, copies, judge, overflow_possible, pass_bound, run_forward
+from ._common import (check_output_contract, copies, judge, overflow_possible, pass_bound,
+                      run_forward, without_bias)
 
 
 def _relationship_14(spec) -> tuple[int, ...]:
@@ -69,7 +70,7 @@ def _extend(a: np.ndarray, spec, size) -> np.ndarray:
     return out
 
 
-@invariant("transposed.grad_input_identity", passes=("transposed", "backward"),
+@invariant("transposed.grad_input_identity", derives=True, passes=("transposed", "backward"),
            needs=Needs(transposed=True),
            statement="the transposed convolution equals the input gradient of the matching "
                      "convolution, computed by the adapter's own backward")
@@ -85,7 +86,8 @@ def matches_grad_input(adapter, case, ctx):
     gy = _extend(case.x, spec, conv.output_size)
     x0 = np.zeros(conv.x_shape, dtype=case.x.dtype)
     gx = adapter.backward(conv, x0, case.w.copy(), None, gy.copy())[0]
-    y = run_forward(adapter, spec, case.x, case.w, None)
+    call_spec, zb = without_bias(adapter, case.spec, case.b)     # no bias (or a zero one)
+    y = run_forward(adapter, call_spec, case.x, case.w, zb)
     _, bt = _expected(adapter, spec, case.x, case.w, None)
     _, bgi = pass_bound(adapter, conv, "grad_input", {"w": case.w, "grad_y": gy})
     return compare(y, gx.astype(np.float64), bt.values + bgi.values, what="y",

@@ -72,4 +72,6 @@ def shapes_text(doc: dict) -> str:
     caps = doc.get("adapter", {}).get("capabilities") or {}
     return (f"{doc['signatures']} distinct call signatures"
             + (" (the adapter compiles per shape: the free search drew fresh values on the "
-               "covering schedule's geometries)" if caps.get("compiles_per_shape") else ""))
+               "covering schedule's geometries, and the invariants that call derived "
+               "geometries had lean schedules, their dtypes, widths and pairs left to the "
+               "reference checks)" if caps.get("compiles_per_shape") else ""))
