@@ -184,3 +184,55 @@ def test_lean_schedules_leave_dtypes_widths_and_pairs_to_the_reference_checks():
     caps = _reference(True).capabilities
     assert not ref.needs_for(caps).lean
     assert {"dtype", "width"} <= {t.partition(":")[0] for t in targets(caps, ref.needs_for(caps), QUICK)}
+
+
+def _call_geometry(method, spec) -> tuple:
+    """(method, x and w shapes, a bias or none, keywords) of a call on ``spec``, as a
+    recorded signature gives them."""
+    from convwitness.boundary.contract import call_kwargs
+    return (method, spec.x_shape, spec.w_shape, bool(spec.bias),
+            tuple(sorted(call_kwargs(spec, transposed=spec.transposed).items())))
+
+
+def test_derived_calls_are_the_calls_the_checks_make():
+    """``Invariant.derived_calls`` (what the lean schedules count) against the calls each
+    check actually makes, recorded by the contract wrapper, on scheduled geometries."""
+    from convwitness.invariants import catalogue
+    caps = _reference(True).capabilities
+    geometry = _call_geometry
+    checked = 0
+    for inv in catalogue():
+        if inv.derives is None or inv.refusal(caps):
+            continue
+        for cases in covering_examples(inv.claims(caps), inv, QUICK, 0)[:5]:
+            case = cases[0]
+            adapter = _reference(True)
+            inv.check(adapter, case, Context(profile=QUICK))
+            made = {(m, a[0][0], a[1][0], a[2] is not None, kw) for m, a, kw in adapter.signatures}
+            own = {geometry(m, case.spec) for m in ("forward", "backward", "transposed")}
+            declared = {geometry(m, sp) for m, sp in inv.derived_calls(case.spec, inv.claims(caps))}
+            assert made - own == declared - own, (inv.id, case.spec.describe())
+            checked += 1
+    assert checked >= 40
+
+
+def test_schedule_ledger_counts_the_calls_each_check_makes():
+    """What the schedules of a port that compiles per shape are chosen by (run/covering.py
+    ``_Ledger.calls_of``: own and derived calls) against the calls each check makes."""
+    from convwitness.invariants import catalogue
+    from convwitness.run.covering import _Ledger
+    caps = _reference(True).capabilities
+    geometry = _call_geometry
+    checked = 0
+    for inv in catalogue():
+        if inv.cases is not None or inv.refusal(caps) or inv.id == "precision.probe":
+            continue
+        ledger = _Ledger(inv, caps, set())
+        for cases in covering_examples(inv.claims(caps), inv, QUICK, 0)[:3]:
+            adapter = _reference(True)
+            inv.check(adapter, cases[0], Context(profile=QUICK))
+            made = {(m, a[0][0], a[1][0], a[2] is not None, kw) for m, a, kw in adapter.signatures}
+            counted = {geometry(m, sp) for m, sp in ledger.calls_of(cases[0].spec)}
+            assert made <= counted, (inv.id, cases[0].spec.describe(), made - counted)
+            checked += 1
+    assert checked >= 60

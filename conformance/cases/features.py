@@ -181,6 +181,8 @@ def reach_of(spec: ConvSpec) -> set:
     tags |= {f"dtype:{spec.dtype}", f"layout:{spec.layout}", f"ndim:{spec.ndim}"}
     if G == 1 and spec.in_channels in THRESHOLD_COUNTS:
         tags.add(f"width:{spec.in_channels}")
+    if not spec.bias:
+        tags.add("bias:absent")
     return tags
 
 

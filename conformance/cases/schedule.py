@@ -13,17 +13,21 @@ either way round; the largest legal output padding; an output of an eighth of th
 profile's element budget or more, ``corner:large_tensor``) the invariant can
 draw, C_in on either side of the vector and tile widths (``width:``, with one group),
 and every value kind it allows (the dtype's range end is the ``near_max`` kind).
-The schedule is greedy: each entry forces one not-yet-reached value of every category
-at once (the builder ignores a forced choice it cannot honour), keeps the geometry if
-it reaches something new, and falls back to forcing one target alone; a target that
-no try reaches stays a hole, which the report names.
-
-Then the feature pairs of :data:`SCHEDULED_PAIRS` (``pair:`` tags, as
+With them, the feature pairs of :data:`SCHEDULED_PAIRS` (``pair:`` tags, as
 :func:`~convwitness.cases.features.pair_tags` reads them): a bug that needs two features
 at once (a strided depthwise kernel, a dilated kernel with a stride remainder, an empty
-batch in a dtype whose kernel mishandles it) is on
-every seed's path only if each admitted combination is scheduled, not left to the free
-search's odds. dtype×ndim is reported, not scheduled (it would multiply the geometries).
+batch in a dtype whose kernel mishandles it) is on every seed's path only if each
+admitted combination is scheduled, not left to the free search's odds. dtype×ndim is
+reported, not scheduled (it would multiply the geometries).
+
+The schedule is a greedy set cover: the run's earlier geometries first (a shared pool),
+then fresh candidates, built under each unreached target's forced choices and under
+merges of several (the builder ignores a forced choice it cannot honour), the one that
+reaches the most unreached targets first; a target no candidate reaches gets tries of
+its own, and one no try reaches stays a hole, which the report names. For a port that
+compiles per shape fresh candidates carry a bias unless forced off (``bias:absent`` is
+then a target: the invariants that need a bias reuse them), and a lean schedule
+(``Needs.lean``) weighs each candidate by the call signatures it adds.
 """
 from __future__ import annotations
 
@@ -33,6 +37,7 @@ from ..geometry.capabilities import Capabilities
 from ..geometry.spec import ConvSpec
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
                    dtypes_for, features_for, groupings_for, usable, zero_spatial_allowed)
+from .cover import cover, prune
 from .features import PAIRS, pair_tags, reach_within
 from .profiles import Profile
 
@@ -64,6 +69,8 @@ _VALUE_FORCE = {
 #: target categories a lean schedule (Needs.lean) leaves to the reference invariants
 LEAN_LEAVES = ("dtype", "width")
 TRIES = 12              # seeded tries per forced combination
+COMBINATIONS = 400      # merged forced choices among a schedule's fresh candidates
+COMBINATIONS_FEW = 1000  # the same for a port that compiles per shape (fewer signatures)
 
 # forced builder choices that produce a tag (tags not listed force their own label)
 _CORNER_FORCE = {"negative_padding": {"asymmetric": True, "pad_lo": "min", "pad": "min"},
@@ -81,6 +88,11 @@ _ALSO_FORCE = {"corner:large_tensor": ({"coincidence": "equal_channels", "groupi
                                         "channel_counts": "threshold", "channels_in": 33,
                                         "length": "max", "batch": "max", "feature": "everyday",
                                         "pad": "max", "ndim": 1},)}     # 1-D: wider channels
+
+
+def _few(caps) -> bool:
+    """A port that compiles per shape (each distinct call signature costs it a compile)."""
+    return bool(getattr(caps, "compiles_per_shape", False))
 
 
 def _ndims(caps: Capabilities, needs: Needs) -> list[int]:
@@ -133,6 +145,8 @@ def targets(caps: Capabilities, needs: Needs, profile: Profile | None = None) ->
         add("corner:max_output_padding")
     if profile is not None and not needs.zero_batch:
         add("corner:large_tensor")          # an output of an eighth of the element budget
+    if _few(caps) and caps.bias and needs.bias is None:
+        add("bias:absent")          # fresh geometries have a bias (_candidates): one without
     for k in needs.kinds:
         add(f"kind:{k}")
     return [t for t in out if t not in needs.never
@@ -147,6 +161,8 @@ def _force(tag: str) -> dict:
         return {"coincidence": "equal_channels", "grouping": "grouped"}
     if cat == "ndim":
         return {"ndim": int(name)}
+    if cat == "bias":
+        return {"bias": False}
     if cat == "width":
         return {"grouping": "single", "channel_counts": "threshold", "channels_in": int(name)}
     return {cat: name}
@@ -178,79 +194,109 @@ def _tags(spec, profile) -> set:
 def _try(caps, profile, needs, forced: dict, seed: int, wanted: set, tries: int = TRIES):
     """The first seeded geometry under ``forced`` that reaches one of ``wanted``, and what
     it reaches of them (None, empty set when no try does)."""
-    for t in range(tries):
+    return next(_built(caps, profile, needs, [forced] * tries, seed, wanted), (None, set()))
+
+
+def _built(caps, profile, needs, forced: list, seed: int, wanted: set):
+    """(geometry, what it reaches of ``wanted``) of each admitted build under ``forced[i]``
+    (picker seed ``seed * 7919 + i``) that reaches something of it."""
+    for i, f in enumerate(forced):
         try:
-            spec = build_spec(RngPicker(seed * 7919 + t, forced), caps, profile, needs)
+            spec = build_spec(RngPicker(seed * 7919 + i, f), caps, profile, needs)
         except Reject:
             continue
-        new = _tags(spec, profile) & wanted
-        if new:
-            return spec, new
-    return None, set()
+        got = _tags(spec, profile) & wanted
+        if got:
+            yield spec, got
+
+
+def _forces(tag: str) -> tuple:
+    """The forced builder choices that give ``tag``, in the order they are tried."""
+    if tag.startswith("pair:"):
+        return (_pair_force(tag),)
+    return (_force(tag),) + _ALSO_FORCE.get(tag, ())
+
+
+def _candidates(caps, profile, needs, seed: int, remaining: list) -> list:
+    """Fresh geometries for the targets still unreached: each target's own forced choices,
+    and merges of several targets' choices (one geometry that reaches many), each built
+    under a seeded picker; with what each reaches of ``remaining``."""
+    import random
+    want = set(remaining)
+    rng = random.Random(seed)
+    forced = [_forces(t)[0] for t in remaining]
+    merges = [dict(f) for f in forced for _ in range(2)]
+    for _ in range(COMBINATIONS_FEW if _few(caps) else COMBINATIONS):
+        merged: dict = {}
+        for f in rng.sample(forced, min(len(forced), rng.randint(2, 8))):
+            if all(merged.get(k, v) == v for k, v in f.items()):
+                merged.update(f)
+        merges.append(merged)
+    # one unreached value of every category at once, with every pair that agrees
+    merged = {}
+    for f in forced:
+        if all(merged.get(k, v) == v for k, v in f.items()):
+            merged.update(f)
+    merges += [merged] * 4
+    if _few(caps):      # a bias unless forced off: the invariants that need one reuse them
+        merges = [{"bias": True, **f} for f in merges]
+    return list(_built(caps, profile, needs, merges, seed, want))
 
 
 def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | None = 0,
-             salt: str = "", pool: list | None = None) -> list:
-    """The explicit geometries (specs) that reach every structural target, in order.
+             salt: str = "", pool: list | None = None, ledger=None) -> list:
+    """The explicit geometries (specs) that reach every structural and pair target, in order.
 
     With ``pool`` (a list of ``(spec, tags)`` shared by the invariants of a run), the
     geometries of earlier invariants that meet these needs are taken first, greedily by
-    how many unreached targets each adds; fresh geometries are added to the pool."""
+    how many unreached targets each adds. Then fresh geometries, by a greedy set cover over
+    candidates built for the targets left (:func:`_candidates`); a target no candidate
+    reaches gets tries of its own (its forced choices, then unforced draws), and one no
+    try reaches stays a hole, which the report names. Fresh geometries join the pool."""
     base = zlib.crc32(f"{salt}/{seed or 0}".encode())
     remaining = [t for t in targets(caps, needs, profile) if not t.startswith("kind:")]
-    specs = []
-    if pool:
-        reusable = [(sp, tags) for sp, tags in pool if satisfies(sp, caps, profile, needs)]
-        while remaining and len(specs) < MAX_ENTRIES and reusable:
-            want = set(remaining)
-            gain, best = max(((len(tags & want), -i) for i, (_, tags) in enumerate(reusable)),
-                             default=(0, 0))
-            if gain == 0:
-                break
-            sp, tags = reusable.pop(-best)
-            specs.append(sp)
-            remaining = [t for t in remaining if t not in tags]
-    step = 0
-    # pair combinations the entries may reach on the way (not an empty batch: its entries
-    # would reach their structural targets with no values to show them)
-    pairs = [t for t in pair_targets(caps, needs) if "=zero×" not in t]
-    while remaining and len(specs) < MAX_ENTRIES:
-        step += 1
-        # one unreached value of every category at once, then the first target alone
-        forced: dict = {}
-        seen_cats = set()
-        for t in remaining:
-            cat = t.partition(":")[0]
-            if cat not in seen_cats:
-                seen_cats.add(cat)
-                for k, v in _force(t).items():
-                    forced.setdefault(k, v)
-        reached = set().union(*(_tags(sp, profile) for sp in specs)) if specs else set()
-        for tag in pairs:       # and every unreached pair combination that agrees
-            f = _pair_force(tag)
-            if tag not in reached and all(forced.get(k, v) == v for k, v in f.items()):
-                forced.update(f)
-        spec, new = _try(caps, profile, needs, forced, base + step, set(remaining))
-        if not new:
-            for i, f in enumerate((_force(remaining[0]),) + _ALSO_FORCE.get(remaining[0], ())):
-                spec, new = _try(caps, profile, needs, f, base + step + 10007 + i, {remaining[0]},
-                                 tries=4 * TRIES)
-                if new:
-                    break
-            if not new:     # a target the forced choice cannot give under these needs (one
-                # unit-length axis beside a long one, for a shift): unforced draws may
-                spec, new = _try(caps, profile, needs, {}, base + step + 30011, {remaining[0]},
-                                 tries=8 * TRIES)
+    remaining += [t for t in pair_targets(caps, needs) if t not in remaining]
+    wanted = set(remaining)
+    specs: list = []
+    reusable = [(sp, tags) for sp, tags in pool or () if satisfies(sp, caps, profile, needs)]
+    if needs.lean and ledger is not None:
+        # each entry calls derived geometries as well: one cover over the pool and fresh
+        # candidates, by targets reached per call signature added (``ledger.cost``)
+        want = set(remaining)
+        sourced = [(sp, _tags(sp, profile) & want) for sp in ledger.sources([g for g, _ in pool or ()])
+                   if satisfies(sp, caps, profile, needs)]
+        remaining = cover(specs, remaining, reusable + [o for o in sourced if o[1]]
+                          + _candidates(caps, profile, needs, base, remaining), ledger, MAX_ENTRIES)
+    elif reusable:
+        remaining = cover(specs, remaining, reusable, ledger, MAX_ENTRIES)
+    if remaining:
+        remaining = cover(specs, remaining, _candidates(caps, profile, needs, base, remaining),
+                           ledger, MAX_ENTRIES)
+    for step, tag in enumerate(list(remaining)):
+        if tag not in remaining or len(specs) >= MAX_ENTRIES:
+            continue
+        spec, new = None, set()
+        for i, f in enumerate(_forces(tag)):
+            spec, new = _try(caps, profile, needs, f, base + 10007 + 31 * step + i, {tag},
+                             tries=4 * TRIES)
             if new:
-                new = _reach(spec, profile) & set(remaining)
-            else:
-                remaining.pop(0)        # unreachable here: the report names the hole
-                continue
-        specs.append(spec)
-        if pool is not None:
-            pool.append((spec, frozenset(_reach(spec, profile))))
-        remaining = [t for t in remaining if t not in new]
-    return _pairs(caps, profile, needs, base, specs, pool)
+                break
+        if not new:     # a target the forced choice cannot give under these needs (one
+            # unit-length axis beside a long one, for a shift): unforced draws may
+            spec, new = _try(caps, profile, needs, {}, base + 30011 + step, {tag},
+                             tries=8 * TRIES)
+        if new:
+            specs.append(spec)
+            got = _tags(spec, profile)
+            remaining = [t for t in remaining if t not in got]
+    specs = prune(specs, wanted, lambda sp: _tags(sp, profile), ledger)
+    if ledger is not None:
+        for sp in specs:
+            ledger.add(sp)
+    if pool is not None:
+        known = {sp for sp, _ in pool}
+        pool.extend((sp, frozenset(_tags(sp, profile))) for sp in specs if sp not in known)
+    return specs
 
 
 def pair_targets(caps: Capabilities, needs: Needs) -> list[str]:
@@ -261,45 +307,6 @@ def pair_targets(caps: Capabilities, needs: Needs) -> list[str]:
         return []
     space = pair_space(caps, needs)
     return [f"pair:{name}={combo}" for name in SCHEDULED_PAIRS for combo in space.get(name, [])]
-
-
-def _pairs(caps, profile, needs, base: int, specs: list, pool) -> list:
-    """``specs`` extended by geometries that reach the admitted pair combinations the
-    schedule has not reached yet: from the pool first, then fresh (one forced pair each)."""
-    reached = set().union(*(_tags(sp, profile) for sp in specs)) if specs else set()
-    remaining = [t for t in pair_targets(caps, needs) if t not in reached]
-    if pool and remaining:
-        reusable = [sp for sp, _ in pool if sp not in specs and satisfies(sp, caps, profile, needs)]
-        for sp in reusable:
-            if len(specs) >= MAX_ENTRIES or not remaining:
-                break
-            got = _tags(sp, profile) & set(remaining)
-            if got:
-                specs.append(sp)
-                remaining = [t for t in remaining if t not in got]
-    step = 0
-    while remaining and len(specs) < MAX_ENTRIES:
-        step += 1
-        # as many unreached combinations at once as their forced choices agree, then the
-        # first one alone
-        forced: dict = {}
-        for tag in remaining:
-            f = _pair_force(tag)
-            if all(forced.get(k, v) == v for k, v in f.items()):
-                forced.update(f)
-        spec, new = _try(caps, profile, needs, forced, base + 20011 + step, set(remaining))
-        if not new:
-            tag = remaining.pop(0)
-            spec, new = _try(caps, profile, needs, _pair_force(tag), base + 40013 + step, {tag},
-                             tries=4 * TRIES)
-            if not new:
-                continue                # not reachable under these needs: a hole in the pair %
-        specs.append(spec)
-        if pool is not None:
-            pool.append((spec, frozenset(_reach(spec, profile))))
-        got = _tags(spec, profile)
-        remaining = [t for t in remaining if t not in got]
-    return specs
 
 
 #: kinds of random values, which show a permuted channel, tap or sample ("ones" does not)

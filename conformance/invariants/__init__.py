@@ -61,8 +61,12 @@ class Invariant:
     steer: bool = False
     #: the check calls the port on geometries derived from the case's (a stride of 1,
     #: explicit padding, the other layout, a gradient as a forward call...): each a
-    #: call signature of its own, which a port that compiles per shape pays for
-    derives: bool = False
+    #: call signature of its own, which a port that compiles per shape pays for;
+    #: ``derives(spec, caps)`` lists those calls as (method, geometry)
+    derives: Callable | None = field(default=None, repr=False, compare=False)
+    #: ``sources(spec, caps)``: geometries whose derived calls land on ``spec`` (for a
+    #: port that compiles per shape, candidates whose derived calls the run may make anyway)
+    sources: Callable | None = field(default=None, repr=False, compare=False)
 
     @property
     def property(self) -> str:
@@ -96,7 +100,7 @@ class Invariant:
 
     def needs_for(self, caps: Capabilities) -> Needs:
         """The needs, adjusted to what the adapter can do (e.g. no dilation)."""
-        lean = self.derives and getattr(caps, "compiles_per_shape", False)
+        lean = self.derives is not None and getattr(caps, "compiles_per_shape", False)
         caps = self.claims(caps)
         needs = self.adjust(caps, self.needs) if self.adjust else self.needs
         return dataclasses.replace(needs, lean=True) if lean else needs
@@ -113,13 +117,26 @@ class Invariant:
         """Failures are information only unless the adapter claims the named capability."""
         return bool(self.informational_unless) and not getattr(caps, self.informational_unless)
 
+    def derived_calls(self, spec, caps: Capabilities) -> list:
+        """(method, geometry) of each call the check makes on ``spec`` besides the case's
+        own geometry, as far as the geometry decides (those ``caps`` admit)."""
+        if self.derives is None:
+            return []
+        from ..errors import SpecError
+        try:
+            calls = self.derives(spec, caps)
+        except SpecError:
+            return []
+        return [(m, sp) for m, sp in calls if sp is not None and caps.admits(sp)]
+
     def check(self, adapter, case, context: Context | None = None):
         return self.func(adapter, case, context or Context())
 
 
 def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | None = None,
               requires=None, informational_unless: str | None = None, adjust=None, cases=None,
-              steer: bool = False, derives: bool = False):
+              steer: bool = False, derives: Callable | None = None,
+              sources: Callable | None = None):
     """Register ``func(adapter, case, context) -> Evidence`` as an invariant."""
     surface, dot, prop = id.partition(".")
     if surface not in SURFACES or not dot or not prop or "." in prop:
@@ -133,7 +150,8 @@ def invariant(id: str, *, statement: str, passes=("forward",), needs: Needs | No
         REGISTRY[id] = Invariant(id=id, statement=statement, passes=frozenset(passes),
                                  needs=needs or Needs(), func=func, requires=requires,
                                  informational_unless=informational_unless, adjust=adjust,
-                                 cases=cases, steer=steer, derives=derives)
+                                 cases=cases, steer=steer, derives=derives,
+                                 sources=sources)
         return func
     return deco
 

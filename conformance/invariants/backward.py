@@ -78,7 +78,9 @@ def _nonzero_bits(a: np.ndarray) -> np.ndarray:
     return raw != 0
 
 
-@invariant("backward.zero_batch", derives=True, passes=("backward",), needs=Needs(zero_batch=True, batch_min=0),
+@invariant("backward.zero_batch", derives=lambda spec, caps: [("backward", spec.replace(batch=1))],
+           sources=lambda spec, caps: [spec.replace(batch=0)] if spec.batch == 1 else [],
+           passes=("backward",), needs=Needs(zero_batch=True, batch_min=0),
            requires=lambda caps: None if caps.zero_batch else "adapter does not claim zero_batch",
            adjust=lambda caps, needs: Needs(zero_batch=True, batch_min=0, bias=True if caps.bias else False),
            statement="for an empty batch the input gradient is empty and the weight and bias "

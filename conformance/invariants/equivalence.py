@@ -54,7 +54,13 @@ def _same(adapter, spec, y, y_other, bound_a, bound_b, *, criterion, mask=None):
                    criterion=criterion, explanation=f"sum of both bounds; {bound_a.explain()}")
 
 
-@invariant("forward.group_split", derives=True, passes=("forward",), needs=Needs(grouped=True),
+def _per_group(spec: ConvSpec) -> ConvSpec:
+    return spec.replace(groups=1, in_channels=spec.in_channels // spec.groups,
+                        out_channels=spec.out_channels // spec.groups)
+
+
+@invariant("forward.group_split", derives=lambda spec, caps: [("forward", _per_group(spec))],
+           passes=("forward",), needs=Needs(grouped=True),
            requires=lambda caps: None if caps.groups else "adapter does not claim groups",
            statement="a grouped convolution equals the per-group convolutions side by side")
 def groups(adapter, case, ctx):
@@ -62,7 +68,7 @@ def groups(adapter, case, ctx):
     within the sum of both bounds."""
     spec = case.spec
     G, Cg, Og = spec.groups, spec.in_channels // spec.groups, spec.out_channels // spec.groups
-    single = spec.replace(groups=1, in_channels=Cg, out_channels=Og)
+    single = _per_group(spec)
     if not adapter.capabilities.admits(single):
         return _skip(f"per-group spec not admitted: {adapter.capabilities.refusal(single)}")
     x, w, b, _ = copies(case)
@@ -92,12 +98,16 @@ def _explicit_padding(spec: ConvSpec, x: np.ndarray):
     else:
         cut = (slice(None), slice(None)) + tuple(sl)
         width = [(0, 0), (0, 0)] + pads
-    xp = np.pad(x[cut], width)
+    return np.pad(x[cut], width), _zero_padded(spec)
+
+
+def _zero_padded(spec: ConvSpec) -> ConvSpec:
     size = tuple(L + lo + hi for L, (lo, hi) in zip(spec.input_size, spec.padding))
-    return xp, spec.replace(input_size=size, padding=0)
+    return spec.replace(input_size=size, padding=0)
 
 
-@invariant("forward.explicit_padding", derives=True, passes=("forward",), needs=Needs(padding=True),
+@invariant("forward.explicit_padding", derives=lambda spec, caps: [("forward", _zero_padded(spec))],
+           passes=("forward",), needs=Needs(padding=True),
            statement="padding equals explicit zeros around the input (cropping where negative)")
 def padding(adapter, case, ctx):
     """f(x; p_lo, p_hi) = f(pad(x, p_lo, p_hi); 0, 0), negative padding cropping the input,
@@ -115,7 +125,8 @@ def padding(adapter, case, ctx):
                  criterion=f"padding: f(x; {spec.padding}) == f(explicitly padded x; 0)")
 
 
-@invariant("forward.stride_subsampling", derives=True, passes=("forward",), needs=Needs(stride=True),
+@invariant("forward.stride_subsampling", derives=lambda spec, caps: [("forward", spec.replace(stride=1))],
+           passes=("forward",), needs=Needs(stride=True),
            statement="a strided convolution is the stride-1 result subsampled by the stride")
 def stride(adapter, case, ctx):
     """f(x; s)[..., h] = f(x; 1)[..., h*s] for h < L_out, within the sum of both bounds."""
@@ -148,14 +159,19 @@ def _dilate_kernel(spec: ConvSpec, w: np.ndarray) -> np.ndarray:
     return out
 
 
-@invariant("forward.dilation_expansion", derives=True, passes=("forward",), needs=Needs(dilation=True),
+def _undilated(spec: ConvSpec) -> ConvSpec:
+    return spec.replace(kernel_size=spec.effective_kernel, dilation=1)
+
+
+@invariant("forward.dilation_expansion", derives=lambda spec, caps: [("forward", _undilated(spec))],
+           passes=("forward",), needs=Needs(dilation=True),
            statement="a dilated kernel equals the zero-inserted kernel without dilation")
 def dilation(adapter, case, ctx):
     """f(x, w; d) = f(x, w_d; 1) with w_d[t*d] = w[t] and zeros between,
     within the sum of both bounds."""
     spec = case.spec
     wd = _dilate_kernel(spec, case.w)
-    plain = spec.replace(kernel_size=spec.effective_kernel, dilation=1)
+    plain = _undilated(spec)
     if not adapter.capabilities.admits(plain):
         return _skip(f"undilated spec not admitted: {adapter.capabilities.refusal(plain)}")
     x, w, b, _ = copies(case)
@@ -187,7 +203,19 @@ def _shiftable(spec, caps) -> dict:
     return out
 
 
-@invariant("forward.shift_equivariance", derives=True, passes=("forward",),
+def _shift(spec, caps):
+    """(axis, shifted spec) of the shift check on ``spec`` (None: no axis): the axis drawn
+    from the geometry alone (cases/values.geometry_rng)."""
+    axes = _shiftable(spec, caps)
+    if not axes:
+        return None
+    a = int(geometry_rng(spec, SALTS["shift_axis"]).choice(sorted(axes)))
+    return a, axes[a]
+
+
+@invariant("forward.shift_equivariance",
+           derives=lambda spec, caps: [("forward", (_shift(spec, caps) or (0, None))[1])],
+           passes=("forward",),
            needs=Needs(applies=lambda spec, caps: bool(_shiftable(spec, caps)),
                        never=("coincidence:output_one",)),
            statement="shifting the input by one stride shifts the output by one position")
@@ -195,14 +223,12 @@ def translation(adapter, case, ctx):
     """With x'[..., i] = x[..., i + s] along one axis: f(x')[..., h] = f(x)[..., h + 1] for every
     h whose window lies right of the leading padding (h >= ceil(p_lo/s)), within both bounds."""
     spec = case.spec
-    rng = geometry_rng(spec, SALTS["shift_axis"])
-    axes = _shiftable(spec, adapter.capabilities)
-    if not axes:
+    shift = _shift(spec, adapter.capabilities)
+    if shift is None:
         return _skip("no axis can be shifted (two outputs, a shifted input admitted, a window "
                      "right of the leading padding)")
-    a = int(rng.choice(sorted(axes)))
+    a, shifted = shift
     s = spec.stride[a]
-    shifted = axes[a]
     ax = _spatial(spec, a)
     xs = np.ascontiguousarray(np.take(case.x, range(s, spec.input_size[a]), axis=ax))
     x, w, b, _ = copies(case)
@@ -228,7 +254,12 @@ def _to_layout(a: np.ndarray, layout: str) -> np.ndarray:
     return np.ascontiguousarray(np.moveaxis(a, -1, 1))
 
 
-@invariant("forward.layout_agreement", derives=True, passes=("forward",),
+def _other_layout(spec: ConvSpec) -> ConvSpec:
+    return spec.replace(layout="channels_first" if spec.layout == "channels_last" else "channels_last")
+
+
+@invariant("forward.layout_agreement", derives=lambda spec, caps: [("forward", _other_layout(spec))],
+           passes=("forward",),
            requires=lambda caps: None if {"channels_first", "channels_last"} <= caps.layouts
            else "adapter claims only one layout",
            statement="channels-last and channels-first give the same result")
@@ -236,8 +267,8 @@ def layout(adapter, case, ctx):
     """f_last(x^T, w^T)^T = f_first(x, w) (channels moved to the last axis and back),
     within the sum of both bounds."""
     spec = case.spec
-    other_layout = "channels_first" if spec.layout == "channels_last" else "channels_last"
-    other = spec.replace(layout=other_layout)
+    other = _other_layout(spec)
+    other_layout = other.layout
     if not adapter.capabilities.admits(other):
         return _skip(f"{other_layout} not admitted: {adapter.capabilities.refusal(other)}")
     x, w, b, _ = copies(case)
@@ -250,7 +281,8 @@ def layout(adapter, case, ctx):
                  criterion=f"layout: {spec.layout} == {other_layout} (transposed back)")
 
 
-@invariant("forward.batch_independence", derives=True, passes=("forward",), needs=Needs(batch_min=2),
+@invariant("forward.batch_independence", derives=lambda spec, caps: [("forward", spec.replace(batch=1))],
+           passes=("forward",), needs=Needs(batch_min=2),
            statement="sample i's output depends only on sample i (other samples changed, or "
                      "computed alone)")
 def batch_independence(adapter, case, ctx):

@@ -116,7 +116,19 @@ def _wc_adjust(caps, needs: Needs) -> Needs:
                    dilation=False if not caps.stride else needs.dilation)
 
 
-@invariant("grad_weight.forward_correlation", derives=True, passes=("forward", "backward"), adjust=_wc_adjust,
+def _correlation_spec(spec: ConvSpec, caps) -> ConvSpec:
+    """The forward geometry of the weight gradient as a correlation (one group's)."""
+    G = spec.groups
+    return ConvSpec(batch=spec.in_channels // G, in_channels=spec.batch,
+                    out_channels=spec.out_channels // G, input_size=spec.input_size,
+                    kernel_size=spec.output_size, stride=spec.dilation, padding=spec.padding,
+                    dilation=spec.stride, groups=1, bias=False, dtype=spec.dtype,
+                    layout=_derived_layout(caps))
+
+
+@invariant("grad_weight.forward_correlation",
+           derives=lambda spec, caps: [("forward", _correlation_spec(spec, caps))],
+           passes=("forward", "backward"), adjust=_wc_adjust,
            statement="the weight gradient equals the correlation of the input with the upstream "
                      "gradient, computed by the adapter's own forward")
 def weight_correlation(adapter, case, ctx):
@@ -127,10 +139,8 @@ def weight_correlation(adapter, case, ctx):
     spec = case.spec
     G = spec.groups
     Cg, Og = spec.in_channels // G, spec.out_channels // G
-    layout = _derived_layout(adapter.capabilities)
-    derived = ConvSpec(batch=Cg, in_channels=spec.batch, out_channels=Og, input_size=spec.input_size,
-                       kernel_size=spec.output_size, stride=spec.dilation, padding=spec.padding,
-                       dilation=spec.stride, groups=1, bias=False, dtype=spec.dtype, layout=layout)
+    derived = _correlation_spec(spec, adapter.capabilities)
+    layout = derived.layout
     if not adapter.capabilities.admits(derived):
         return _skip(f"derived correlation not admitted: {adapter.capabilities.refusal(derived)}")
     xcf, gcf = _cf(case.x, spec.layout), _cf(case.grad_y, spec.layout)
@@ -167,7 +177,20 @@ def _crop_input(z: np.ndarray, spec: ConvSpec) -> np.ndarray:
     return out
 
 
-@invariant("grad_input.forward_flipped_kernel", derives=True, passes=("forward", "backward"),
+def _flipped_spec(spec: ConvSpec, caps) -> ConvSpec:
+    """The forward geometry of the input gradient as a convolution of the zero-inserted,
+    padded upstream gradient with the flipped kernel."""
+    size = tuple(s * (o - 1) + 1 + d * (k - 1) * 2 + r for s, o, d, k, r in
+                 zip(spec.stride, spec.output_size, spec.dilation, spec.kernel_size, spec.remainder))
+    return ConvSpec(batch=spec.batch, in_channels=spec.out_channels, out_channels=spec.in_channels,
+                    input_size=size, kernel_size=spec.kernel_size, stride=1, padding=0,
+                    dilation=spec.dilation, groups=spec.groups, bias=False, dtype=spec.dtype,
+                    layout=_derived_layout(caps))
+
+
+@invariant("grad_input.forward_flipped_kernel",
+           derives=lambda spec, caps: [("forward", _flipped_spec(spec, caps))],
+           passes=("forward", "backward"),
            statement="the input gradient equals the adapter's own forward of the zero-inserted, "
                      "padded upstream gradient with the flipped kernel")
 def input_transposed(adapter, case, ctx):
@@ -187,10 +210,9 @@ def input_transposed(adapter, case, ctx):
     wcf = _cf(case.w, spec.layout).astype(np.float64)
     wf = wcf.reshape((G, Og, Cg) + spec.kernel_size).swapaxes(1, 2)
     wf = np.flip(wf.reshape((spec.in_channels, Og) + spec.kernel_size), axis=tuple(range(2, 2 + nd)))
-    layout = _derived_layout(adapter.capabilities)
-    derived = ConvSpec(batch=spec.batch, in_channels=spec.out_channels, out_channels=spec.in_channels,
-                       input_size=gp.shape[2:], kernel_size=spec.kernel_size, stride=1, padding=0,
-                       dilation=spec.dilation, groups=G, bias=False, dtype=spec.dtype, layout=layout)
+    derived = _flipped_spec(spec, adapter.capabilities)
+    layout = derived.layout
+    assert derived.input_size == gp.shape[2:]
     if not adapter.capabilities.admits(derived):
         return _skip(f"derived transposed convolution not admitted: {adapter.capabilities.refusal(derived)}")
     xd = to_format(_from_cf(gp, layout), spec.dtype)

@@ -30,10 +30,25 @@ from ._common import model_of
 REDUCTION = 64          # channels of the accumulation probe
 
 
-def _probe_spec(case_spec, channels: int) -> ConvSpec:
-    nd = case_spec.ndim
+def _probe_spec(case_spec, channels: int, ndim: int | None = None, layout: str | None = None) -> ConvSpec:
+    nd = ndim or case_spec.ndim
     return ConvSpec(batch=1, in_channels=channels, out_channels=1, input_size=(1,) * nd,
-                    kernel_size=(1,) * nd, dtype=case_spec.dtype, layout=case_spec.layout, bias=False)
+                    kernel_size=(1,) * nd, dtype=case_spec.dtype, layout=layout or case_spec.layout,
+                    bias=False)
+
+
+def _geometry(adapter, case_spec, profile) -> ConvSpec:
+    """The probe's geometry: REDUCTION channels into one, 1x1, in the case's ndim and layout.
+    For a port that compiles per shape, the geometry long_sum.forward calls with a kernel
+    of 1 in this dtype (its channel count, the lowest ndim, the first layout): the probe
+    then adds no call signature of its own."""
+    caps = adapter.capabilities
+    if not getattr(caps, "compiles_per_shape", False):
+        return _probe_spec(case_spec, REDUCTION)
+    from .stress import FORWARD_CHANNELS
+    caps = caps.for_passes({"forward"})
+    return _probe_spec(case_spec, FORWARD_CHANNELS.get(profile.name, (256,))[-1],
+                       min(caps.ndims), sorted(caps.layouts)[0])
 
 
 def _arrays(spec, xvals, wvals):
@@ -49,13 +64,12 @@ def _run(adapter, spec, xvals, wvals) -> float:
     return float(adapter.forward(spec, x, w, None).astype(np.float64).reshape(-1)[0])
 
 
-def _operand_bits(adapter, base, which: str, limit: int) -> int:
+def _operand_bits(adapter, spec, which: str, limit: int) -> int:
     """Largest k <= limit such that every 1 + 2^-j (j <= k) is read exactly (in the first
     channel of the accumulation probe's geometry, zeros in the others: one geometry, one
     call signature, for both probes)."""
-    spec = _probe_spec(base, REDUCTION)
-    found = 0
-    one, zero = [1.0] * REDUCTION, [0.0] * (REDUCTION - 1)
+    found, n = 0, spec.in_channels
+    one, zero = [1.0] * n, [0.0] * (n - 1)
     for k in range(1, limit + 1):
         v = 1.0 + 2.0 ** -k
         got = _run(adapter, spec, [v] + zero, one) if which == "x" else \
@@ -66,22 +80,19 @@ def _operand_bits(adapter, base, which: str, limit: int) -> int:
     return found
 
 
-def _accumulation_bits(adapter, base, limit: int, fmt_max: float) -> tuple[int, int | None]:
+def _accumulation_bits(adapter, spec, limit: int, fmt_max: float) -> tuple[int, int | None]:
     """(bits kept by partial sums as far as probed, the first e that lost the 1 or None)."""
-    spec = _probe_spec(base, REDUCTION)
+    n = spec.in_channels
     for e in range(1, limit + 1):
         if 2.0 ** e >= fmt_max:
             return e, None
-        for one_at in (1, REDUCTION // 2 + 1):
-            x = np.zeros(REDUCTION)
+        for one_at in (1, n // 2 + 1):
+            x = np.zeros(n)
             x[0], x[one_at], x[-1] = 2.0 ** e, 1.0, -(2.0 ** e)
-            if _run(adapter, spec, x, np.ones(REDUCTION)) != 1.0:
+            if _run(adapter, spec, x, np.ones(n)) != 1.0:
                 return e, e
     return limit + 1, None
 
-
-def _claims(caps, spec) -> bool:
-    return caps.admits(_probe_spec(spec, REDUCTION))
 
 
 @invariant("precision.probe", passes=("forward",),
@@ -92,25 +103,26 @@ def precision_probe(adapter, case, ctx):
     Accumulation: y(2^e, 1, -2^e) = 1 for e < p_acc, in any summation order."""
     spec = case.spec
     # once per dtype, layout and ndim (each may have a kernel of its own); once per dtype
-    # for a port that compiles per shape (two probe geometries per key are two signatures)
+    # for a port that compiles per shape (on a geometry the run calls anyway, _geometry)
     key = ((spec.dtype,) if getattr(adapter.capabilities, "compiles_per_shape", False)
            else (spec.dtype, spec.layout, spec.ndim))
     done = ctx.state.setdefault("probed", {})
     if key in done:
         return done[key]
-    if not _claims(adapter.capabilities, spec):
+    probe = _geometry(adapter, spec, ctx.profile)
+    if not adapter.capabilities.admits(probe):
         ev = Evidence.skip(f"precision probe: the probe geometry is not admitted for {key}")
         done[key] = ev
         return ev
-    m = model_of(adapter, spec).resolve(spec.dtype)
+    m = model_of(adapter, probe).resolve(spec.dtype)
     dtype = get_format(spec.dtype)
     p_op = min(get_format(m.operand).precision, dtype.precision)
     p_acc = get_format(m.accumulate).precision
     limit_op = dtype.precision - 1                  # 1 + 2^-k must be storable in the dtype
-    found_x = _operand_bits(adapter, spec, "x", limit_op)
-    found_w = _operand_bits(adapter, spec, "w", limit_op)
+    found_x = _operand_bits(adapter, probe, "x", limit_op)
+    found_w = _operand_bits(adapter, probe, "w", limit_op)
     acc_max = get_format(m.accumulate).max
-    bits, lost = _accumulation_bits(adapter, spec, min(p_acc + 8, 62), min(acc_max, dtype.max))
+    bits, lost = _accumulation_bits(adapter, probe, min(p_acc + 8, 62), min(acc_max, dtype.max))
     problems = []
     if min(found_x, found_w) < min(p_op - 1, limit_op):
         problems.append(f"operands keep only {min(found_x, found_w) + 1} significant bits "
@@ -118,7 +130,7 @@ def precision_probe(adapter, case, ctx):
     if lost is not None and lost + 1 <= p_acc:
         problems.append(f"partial sums keep at most {lost} significant bits (2^{lost} + 1 was "
                         f"rounded), declared accumulation in {m.accumulate} ({p_acc} bits)")
-    found = (f"{spec.dtype}/{spec.layout}: operands keep ≥ {min(found_x, found_w) + 1} bits "
+    found = (f"{spec.dtype}/{probe.layout}: operands keep ≥ {min(found_x, found_w) + 1} bits "
              f"(declared {p_op}); partial sums keep "
              + (f"{lost} bits" if lost is not None else f"≥ {bits} bits")
              + f" (declared {m.accumulate}, {p_acc})")

@@ -70,7 +70,9 @@ def _extend(a: np.ndarray, spec, size) -> np.ndarray:
     return out
 
 
-@invariant("transposed.grad_input_identity", derives=True, passes=("transposed", "backward"),
+@invariant("transposed.grad_input_identity",
+           derives=lambda spec, caps: [("backward", spec.replace(bias=False).matching_conv())],
+           passes=("transposed", "backward"),
            needs=Needs(transposed=True),
            statement="the transposed convolution equals the input gradient of the matching "
                      "convolution, computed by the adapter's own backward")

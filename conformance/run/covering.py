@@ -29,19 +29,77 @@ def run_schedules(caps, profile: Profile, seed) -> dict:
     the invariants before it (fewer distinct call signatures for ports that compile per
     shape). A function of (capabilities, profile, seed) alone, so ``run``, ``--only``,
     shards and generated suites all get the same schedule for an invariant."""
-    from ..cases.schedule import schedule
     key = (caps, profile, seed)
     try:
         if key in _SCHEDULES:
             return _SCHEDULES[key]
     except TypeError:               # unhashable capabilities: build, do not cache
         key = None
-    pool: list = []
-    out = {inv.id: schedule(caps, profile, inv.needs_for(caps), seed, inv.id, pool)
-           for inv in catalogue() if inv.cases is None and not inv.refusal(caps)}
+    invs = [inv for inv in catalogue() if inv.cases is None and not inv.refusal(caps)]
+    if few_shapes(caps):        # the construction that makes the fewest calls
+        out = min((_build(caps, profile, seed, invs, v) for v in range(RESTARTS)),
+                  key=lambda built: len(built[1]))[0]
+    else:
+        out = _build(caps, profile, seed, invs, 0)[0]
     if key is not None:
         _SCHEDULES[key] = out
     return out
+
+
+class _Ledger:
+    """The calls (method, geometry) a run's schedules make, kept while one invariant's
+    schedule is chosen, for a port that compiles per shape (each new call signature costs
+    it a compile): how many new calls a geometry would add (its own and its derived ones),
+    and the record of each geometry chosen."""
+
+    def __init__(self, inv: Invariant, caps, calls: set):
+        self.inv, self.caps, self.calls = inv, inv.claims(caps), calls
+        self._seen: dict = {}
+
+    def _own(self, spec) -> set:
+        own = {"transposed" if spec.transposed else "forward"} if self.inv.passes - {"backward"} else set()
+        # the call.* invariants check the call itself on every pass the port offers
+        every = self.inv.id.startswith("call.") and "backward" in self.caps.claimed_passes
+        if ("backward" in self.inv.passes or every) and not spec.transposed:
+            own.add("backward")
+        return {(m, spec) for m in own}
+
+    def calls_of(self, spec) -> frozenset:
+        """(method, geometry) of the calls the invariant makes on ``spec``."""
+        if spec not in self._seen:
+            self._seen[spec] = frozenset(self._own(spec) | set(self.inv.derived_calls(spec, self.caps)))
+        return self._seen[spec]
+
+    def add(self, spec) -> None:
+        self.calls |= self.calls_of(spec)
+
+    def sources(self, specs) -> list:
+        """The invariant's ``sources`` of ``specs``: geometries whose derived calls land on
+        one of them (candidates whose derived calls the run may already make)."""
+        if self.inv.sources is None:
+            return []
+        return list(dict.fromkeys(src for sp in specs for src in self.inv.sources(sp, self.caps)
+                                  if src is not None))
+
+
+#: schedule constructions tried for a port that compiles per shape (the greedy covers
+#: differ with the seeds of their fresh candidates; the one making the fewest calls is kept)
+RESTARTS = 3
+
+
+def _build(caps, profile, seed, invs: list, variant: int) -> tuple[dict, set]:
+    """(invariant id -> schedule, the (method, geometry) calls they make) of one
+    construction: over one pool, in catalogue order, the lean schedules last (they weigh
+    their choices by the calls the others make)."""
+    from ..cases.schedule import schedule
+    pool: list = []
+    calls: set = set()
+    out = {}
+    for inv in sorted(invs, key=lambda inv: inv.needs_for(caps).lean):
+        ledger = _Ledger(inv, caps, calls) if few_shapes(caps) else None
+        salt = inv.id if not variant else f"{inv.id}#{variant}"
+        out[inv.id] = schedule(caps, profile, inv.needs_for(caps), seed, salt, pool, ledger)
+    return {inv.id: out[inv.id] for inv in invs}, calls
 
 
 def free_examples(profile: Profile, explicit: list) -> int:
