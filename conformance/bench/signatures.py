@@ -10,7 +10,8 @@ simulated compile cost replaced by 1 s per signature: arithmetic, printed as suc
 as a port that does not say so, once declaring ``compiles_per_shape=True`` (the free
 search then stays on the covering schedule's geometries, run/covering.py; the invariants
 that call derived geometries get lean schedules, a call without bias passes a zero bias,
-the precision probe runs once per dtype, long_sum.* keep one shape per dtype and kernel).
+the precision probe runs once per dtype, long_sum.* run one geometry per dtype);
+then the declaring port's count on each of ``SEEDS``.
 """
 from __future__ import annotations
 
@@ -20,6 +21,7 @@ import time
 __all__ = ["bench_signatures", "CompilePerShape"]
 
 COMPILE_S = 0.05
+SEEDS = range(5)        # the seeds whose counts are printed as well
 
 
 class CompilePerShape:
@@ -77,3 +79,10 @@ def bench_signatures(out=sys.stdout):
               f"signature; compiles_per_shape={declared}): {n} signatures, {wall:.1f} s wall "
               f"measured; at 1 s per signature that is {rest + n:.0f} s ({rest:.1f} s of it not "
               f"compiling); conformant: {doc['conformant']}", file=out)
+    counts = []
+    for seed in SEEDS:          # the count is the schedule's: a function of the seed
+        port = CompilePerShape(compile_s=0.0)
+        doc, _ = _run(wrap(port, source="compile-per-shape"), seed)
+        counts.append(f"{seed}: {len(port.seen)}" + ("" if doc["conformant"] else " (not conformant)"))
+    print("signatures, simulated compile-per-shape port declaring it, quick, by seed: "
+          + ", ".join(counts), file=out)

@@ -39,16 +39,15 @@ def _probe_spec(case_spec, channels: int, ndim: int | None = None, layout: str |
 
 def _geometry(adapter, case_spec, profile) -> ConvSpec:
     """The probe's geometry: REDUCTION channels into one, 1x1, in the case's ndim and layout.
-    For a port that compiles per shape, the geometry long_sum.forward calls with a kernel
-    of 1 in this dtype (its channel count, the lowest ndim, the first layout): the probe
-    then adds no call signature of its own."""
+    For a port that compiles per shape, the geometry long_sum.forward calls in this dtype
+    (1x1, ``few_channels``, the lowest ndim, the first layout): the probe then adds no call
+    signature of its own."""
     caps = adapter.capabilities
     if not getattr(caps, "compiles_per_shape", False):
         return _probe_spec(case_spec, REDUCTION)
-    from .stress import FORWARD_CHANNELS
+    from .stress import few_channels
     caps = caps.for_passes({"forward"})
-    return _probe_spec(case_spec, FORWARD_CHANNELS.get(profile.name, (256,))[-1],
-                       min(caps.ndims), sorted(caps.layouts)[0])
+    return _probe_spec(case_spec, few_channels(profile), min(caps.ndims), sorted(caps.layouts)[0])
 
 
 def _arrays(spec, xvals, wvals):
