@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import zlib
 
-from ..geometry.capabilities import Capabilities
+from ..geometry.capabilities import Capabilities, compiles_per_shape
 from ..geometry.spec import ConvSpec
 from .draw import (THRESHOLD_COUNTS, Needs, Reject, RngPicker, build_spec, coincidences_for,
                    dtypes_for, features_for, groupings_for, usable, zero_spatial_allowed)
@@ -90,11 +90,6 @@ _ALSO_FORCE = {"corner:large_tensor": ({"coincidence": "equal_channels", "groupi
                                         "pad": "max", "ndim": 1},)}     # 1-D: wider channels
 
 
-def _few(caps) -> bool:
-    """A port that compiles per shape (each distinct call signature costs it a compile)."""
-    return bool(getattr(caps, "compiles_per_shape", False))
-
-
 def _ndims(caps: Capabilities, needs: Needs) -> list[int]:
     return sorted(caps.ndims if needs.ndims is None else set(caps.ndims) & set(needs.ndims))
 
@@ -145,7 +140,7 @@ def targets(caps: Capabilities, needs: Needs, profile: Profile | None = None) ->
         add("corner:max_output_padding")
     if profile is not None and not needs.zero_batch:
         add("corner:large_tensor")          # an output of an eighth of the element budget
-    if _few(caps) and caps.bias and needs.bias is None:
+    if compiles_per_shape(caps) and caps.bias and needs.bias is None:
         add("bias:absent")          # fresh geometries have a bias (_candidates): one without
     for k in needs.kinds:
         add(f"kind:{k}")
@@ -226,7 +221,7 @@ def _candidates(caps, profile, needs, seed: int, remaining: list) -> list:
     rng = random.Random(seed)
     forced = [_forces(t)[0] for t in remaining]
     merges = [dict(f) for f in forced for _ in range(2)]
-    for _ in range(COMBINATIONS_FEW if _few(caps) else COMBINATIONS):
+    for _ in range(COMBINATIONS_FEW if compiles_per_shape(caps) else COMBINATIONS):
         merged: dict = {}
         for f in rng.sample(forced, min(len(forced), rng.randint(2, 8))):
             if all(merged.get(k, v) == v for k, v in f.items()):
@@ -238,7 +233,7 @@ def _candidates(caps, profile, needs, seed: int, remaining: list) -> list:
         if all(merged.get(k, v) == v for k, v in f.items()):
             merged.update(f)
     merges += [merged] * 4
-    if _few(caps):      # a bias unless forced off: the invariants that need one reuse them
+    if compiles_per_shape(caps):      # a bias unless forced off: the invariants that need one reuse them
         merges = [{"bias": True, **f} for f in merges]
     return list(_built(caps, profile, needs, merges, seed, want))
 
@@ -261,7 +256,7 @@ def schedule(caps: Capabilities, profile: Profile, needs: Needs, seed: int | Non
     reusable = [(sp, tags) for sp, tags in pool or () if satisfies(sp, caps, profile, needs)]
     if needs.lean and ledger is not None:
         # each entry calls derived geometries as well: one cover over the pool and fresh
-        # candidates, by targets reached per call signature added (``ledger.cost``)
+        # candidates, by targets reached per call signature added (cases/cover.py ``cost``)
         want = set(remaining)
         sourced = [(sp, _tags(sp, profile) & want) for sp in ledger.sources([g for g, _ in pool or ()])
                    if satisfies(sp, caps, profile, needs)]

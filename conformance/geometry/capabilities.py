@@ -17,7 +17,7 @@ from .formats import STORAGE_FORMATS
 from .quant import QuantCapabilities
 from .spec import LAYOUTS, ConvSpec
 
-__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES", "GRADIENTS", "MODEL_KEYS"]
+__all__ = ["Capabilities", "PADDING_KINDS", "PASS_NAMES", "GRADIENTS", "MODEL_KEYS", "compiles_per_shape"]
 
 PADDING_KINDS = ("symmetric", "asymmetric", "negative")
 PASS_NAMES = ("forward", "backward", "transposed", "quantized")
@@ -282,3 +282,10 @@ def padding_kinds(spec: ConvSpec) -> set[str]:
         elif lo > 0:
             kinds.add("symmetric")
     return kinds
+
+
+def compiles_per_shape(caps) -> bool:
+    """Whether the port pays for each new call signature (``Capabilities.compiles_per_shape``,
+    False for capabilities that do not say): its runs keep to the schedules' geometries and
+    count signatures (run/covering.py)."""
+    return bool(getattr(caps, "compiles_per_shape", False))

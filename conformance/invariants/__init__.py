@@ -12,7 +12,7 @@ import inspect
 from dataclasses import dataclass, field
 from typing import Callable
 
-from ..geometry.capabilities import Capabilities
+from ..geometry.capabilities import Capabilities, compiles_per_shape
 from ..errors import ConvWitnessError
 from ..cases.profiles import Profile, get_profile
 from ..cases.strategies import Needs
@@ -100,7 +100,7 @@ class Invariant:
 
     def needs_for(self, caps: Capabilities) -> Needs:
         """The needs, adjusted to what the adapter can do (e.g. no dilation)."""
-        lean = self.derives is not None and getattr(caps, "compiles_per_shape", False)
+        lean = self.derives is not None and compiles_per_shape(caps)
         caps = self.claims(caps)
         needs = self.adjust(caps, self.needs) if self.adjust else self.needs
         return dataclasses.replace(needs, lean=True) if lean else needs

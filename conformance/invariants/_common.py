@@ -10,6 +10,7 @@ from ..numerics import reference as ref
 from ..numerics.bounds import Bound, derive
 from .evidence import Evidence, compare
 from ..geometry.formats import get_format
+from ..geometry.capabilities import compiles_per_shape
 
 __all__ = ["copies", "model_of", "pass_bound", "judge", "run_forward", "overflow_possible", "self_bound",
            "check_output_contract", "without_bias"]
@@ -28,7 +29,7 @@ def without_bias(adapter, spec, b):
     keeps the case's signature instead of making one of its own)."""
     if b is None or not spec.bias:
         return spec.replace(bias=False), None
-    if getattr(adapter.capabilities, "compiles_per_shape", False):
+    if compiles_per_shape(adapter.capabilities):
         return spec, np.zeros_like(b)
     return spec.replace(bias=False), None
 

@@ -22,6 +22,7 @@ import numpy as np
 
 from .evidence import Evidence
 from ..geometry.formats import get_format, numpy_dtype
+from ..geometry.capabilities import compiles_per_shape
 from ..geometry.spec import ConvSpec
 from ..cases.strategies import Needs
 from . import invariant
@@ -43,7 +44,7 @@ def _geometry(adapter, case_spec, profile) -> ConvSpec:
     (1x1, ``few_channels``, the lowest ndim, the first layout): the probe then adds no call
     signature of its own."""
     caps = adapter.capabilities
-    if not getattr(caps, "compiles_per_shape", False):
+    if not compiles_per_shape(caps):
         return _probe_spec(case_spec, REDUCTION)
     from .stress import few_channels
     caps = caps.for_passes({"forward"})
@@ -103,7 +104,7 @@ def precision_probe(adapter, case, ctx):
     spec = case.spec
     # once per dtype, layout and ndim (each may have a kernel of its own); once per dtype
     # for a port that compiles per shape (on a geometry the run calls anyway, _geometry)
-    key = ((spec.dtype,) if getattr(adapter.capabilities, "compiles_per_shape", False)
+    key = ((spec.dtype,) if compiles_per_shape(adapter.capabilities)
            else (spec.dtype, spec.layout, spec.ndim))
     done = ctx.state.setdefault("probed", {})
     if key in done:

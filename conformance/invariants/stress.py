@@ -16,6 +16,7 @@ from __future__ import annotations
 from hypothesis import assume, strategies as st
 
 from ..cases.case import Case
+from ..geometry.capabilities import compiles_per_shape
 from ..geometry.spec import ConvSpec
 from ..cases.strategies import Needs
 from ..cases.values import fill
@@ -43,7 +44,7 @@ def few_channels(profile) -> int:
 def _few(caps) -> bool:
     """A port that compiles per shape: one geometry per dtype for each long sum (each
     other choice would be a call signature of its own)."""
-    return bool(getattr(caps, "compiles_per_shape", False))
+    return compiles_per_shape(caps)
 
 
 def _dtype(draw, caps):

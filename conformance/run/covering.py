@@ -15,6 +15,8 @@ import zlib
 import hypothesis
 
 from ..cases.profiles import Profile
+# whether the free search stays on the schedule's geometries (the port compiles per shape)
+from ..geometry.capabilities import compiles_per_shape as few_shapes
 from ..invariants import Invariant, catalogue
 
 __all__ = ["covering_examples", "run_schedules", "free_examples", "free_strategy",
@@ -24,10 +26,10 @@ _SCHEDULES: dict = {}
 
 
 def run_schedules(caps, profile: Profile, seed) -> dict:
-    """The covering schedules of every invariant the capabilities admit, built in catalogue
-    order over one run-wide pool of geometries: an invariant first reuses the geometries of
-    the invariants before it (fewer distinct call signatures for ports that compile per
-    shape). A function of (capabilities, profile, seed) alone, so ``run``, ``--only``,
+    """The covering schedules of every invariant the capabilities admit, built over one
+    run-wide pool of geometries: an invariant first reuses the geometries of the
+    invariants before it (:func:`_build`; for a port that compiles per shape, the best of
+    ``RESTARTS`` constructions by the calls they make). A function of (capabilities, profile, seed) alone, so ``run``, ``--only``,
     shards and generated suites all get the same schedule for an invariant."""
     key = (caps, profile, seed)
     try:
@@ -106,12 +108,6 @@ def free_examples(profile: Profile, explicit: list) -> int:
     """Hypothesis's free search after the schedule: the schedule's geometries replace part
     of it, never more than half."""
     return max(profile.examples - len(explicit), profile.examples // 2)
-
-
-def few_shapes(caps) -> bool:
-    """Whether the free search stays on the schedule's geometries (the port compiles per
-    shape)."""
-    return bool(getattr(caps, "compiles_per_shape", False))
 
 
 def free_strategy(caps, inv: Invariant, profile: Profile, explicit: list):
